@@ -1,0 +1,248 @@
+"""Command line: ``nl-unwarp warp|correct|describe|import|demo``.
+
+The CLI parses, calls library functions, and reports. Exit codes: 0 done,
+1 failure (a one-line message says which file and field), 2 usage error.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import logging
+import sys
+import time
+from pathlib import Path
+
+from . import __version__
+from .errors import InputError
+from .frames import PATIENT_POSITIONS
+from .resample import ORDERS
+from .warp import MODES
+
+PROG = "nl-unwarp"
+CAUTION = ("For research pipelines only: not for diagnosis. Defer to your local scanner QA and "
+           "licensed practice.")
+
+
+class _Progress:
+    """Step messages with elapsed time on stderr."""
+
+    def __init__(self, quiet: bool = False) -> None:
+        self.quiet = quiet
+        self.start = time.perf_counter()
+
+    def step(self, message: str) -> None:
+        if not self.quiet:
+            print(f"[{time.perf_counter() - self.start:6.1f} s] {message}", file=sys.stderr, flush=True)
+
+    def volumes(self, done: int, total: int) -> None:
+        if total > 1 and not self.quiet:
+            print(f"\r  volume {done}/{total}", end="\n" if done == total else "", file=sys.stderr,
+                  flush=True)
+
+
+def _add_frame_options(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("patient and table (device frame)")
+    g.add_argument("--position", default="HFS", type=str.upper, choices=sorted(PATIENT_POSITIONS),
+                   help="DICOM PatientPosition (default: HFS)")
+    g.add_argument("--table-position", nargs=3, type=float, metavar=("TP1", "TP2", "TP3"),
+                   help="BIDS TablePosition, mm (left, up, into the bore)")
+    g.add_argument("--isocenter-offset", nargs=3, type=float, metavar=("DX", "DY", "DZ"),
+                   help="device coordinates (mm) of the world origin; overrides --table-position")
+    g = p.add_argument_group("2D acquisitions")
+    g.add_argument("--mode", choices=MODES, default="full",
+                   help="correct all of the displacement, only in the slice plane, or only "
+                        "normal to it (default: full)")
+    g.add_argument("--slice-axis", choices=("i", "j", "k"),
+                   help="voxel axis normal to the slices (default: the axis of largest spacing)")
+
+
+def _add_warp_outputs(p: argparse.ArgumentParser, *, required_field: bool) -> None:
+    g = p.add_argument_group("warp products")
+    g.add_argument("--out-field", required=required_field,
+                   help="ITK/ANTs displacement field (NIfTI, LPS, intent vector)")
+    g.add_argument("--out-jacobian", help="Jacobian determinant map")
+    g.add_argument("--out-magnitude", help="displacement magnitude map, mm")
+    g.add_argument("--out-mask", help="mask of voxels beyond the model's valid radius")
+    g.add_argument("--out-summary", help="summary JSON")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog=PROG, description="Gradient-nonlinearity correction for MRI. " + CAUTION)
+    parser.add_argument("--version", action="version", version=f"%(prog)s {__version__}")
+    parser.add_argument("--quiet", action="store_true", help="no progress messages")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    p = sub.add_parser("warp", help="make the warp for an image grid")
+    p.add_argument("reference", help="image whose grid the warp is computed on")
+    p.add_argument("--coil", required=True, help="coil model file (nl_unwarp-coil JSON)")
+    _add_frame_options(p)
+    _add_warp_outputs(p, required_field=True)
+
+    p = sub.add_parser("correct", help="correct an image (optionally writing the warp)")
+    p.add_argument("source", help="raw (distorted) image, 3-D or 4-D")
+    p.add_argument("corrected", help="corrected image to write")
+    p.add_argument("--coil", required=True, help="coil model file (nl_unwarp-coil JSON)")
+    p.add_argument("--order", type=int, choices=ORDERS, default=3,
+                   help="B-spline interpolation order (default: 3, cubic)")
+    p.add_argument("--no-jacobian", action="store_true",
+                   help="do not multiply by the Jacobian determinant")
+    p.add_argument("--fill", type=float, default=0.0, help="value outside the field of view")
+    p.add_argument("--keep-dtype", action="store_true",
+                   help="write the input data type (integers rounded and clipped)")
+    _add_frame_options(p)
+    _add_warp_outputs(p, required_field=False)
+
+    p = sub.add_parser("describe", help="describe a coil model")
+    p.add_argument("coil", help="coil model file")
+    p.add_argument("--json", action="store_true", help="print JSON")
+
+    p = sub.add_parser("import", help="make a coil model file from a plain table")
+    p.add_argument("table", help="TSV/CSV with columns axis, degree, order, kind, value")
+    p.add_argument("output", help="coil model file to write")
+    p.add_argument("--normalisation", required=True, choices=("schmidt", "unnormalised", "orthonormal"))
+    p.add_argument("--condon-shortley", action="store_true",
+                   help="the table's functions include the (-1)^m phase")
+    p.add_argument("--reference-radius-mm", type=float, required=True)
+    p.add_argument("--valid-radius-mm", type=float, required=True)
+    p.add_argument("--gradient-mT-per-m", type=float,
+                   help="values are field coefficients in mT at this nominal gradient")
+    p.add_argument("--label", default="imported")
+    p.add_argument("--description", default="")
+    p.add_argument("--date", default="")
+    p.add_argument("--source-kind", choices=("design", "measurement", "fit"), default="design")
+
+    p = sub.add_parser("demo", help="run the main job on the embedded fictional demo")
+    p.add_argument("outdir", help="folder for the demo's images and summary")
+    return parser
+
+
+def _frame_spec(args):
+    from .api import FrameSpec
+
+    return FrameSpec(args.position,
+                     tuple(args.table_position) if args.table_position else None,
+                     tuple(args.isocenter_offset) if args.isocenter_offset else None)
+
+
+def _warp_outputs(args):
+    from .api import WarpOutputs
+
+    return WarpOutputs(args.out_field, args.out_jacobian, args.out_magnitude, args.out_mask,
+                       args.out_summary)
+
+
+def _slice_axis(args):
+    return None if args.slice_axis is None else "ijk".index(args.slice_axis)
+
+
+def _print_warp_summary(s: dict) -> None:
+    print(f"coil model       {s['coil_model']['label']} (sha256 {str(s['coil_model']['sha256'])[:12]})")
+    print(f"position         {s['patient_position']}; isocenter at RAS "
+          f"{', '.join(f'{v:.1f}' for v in s['isocenter_ras_mm'])} mm ({s['isocenter_offset_from']})")
+    print(f"mode             {s['mode']}")
+    print(f"displacement     max {s['displacement_max_mm']:.3f} mm, 99th pct {s['displacement_p99_mm']:.3f} mm")
+    print(f"jacobian         {s['jacobian_min']:.4f} .. {s['jacobian_max']:.4f}")
+    print(f"beyond valid r.  {100 * s['outside_valid_fraction']:.1f} % of voxels")
+    print(f"warp lattice     {s['lattice_mm']:g} mm, interpolation error {s['interpolation_error_mm']:.2e} mm")
+
+
+def _cmd_warp(args, progress: _Progress) -> None:
+    from .api import warp_file
+
+    progress.step(f"computing the warp on the grid of {args.reference}")
+    summary = warp_file(args.reference, args.coil, _warp_outputs(args), frame=_frame_spec(args),
+                        mode=args.mode, slice_axis=_slice_axis(args))
+    _print_warp_summary(summary)
+    print(f"wrote            {args.out_field}")
+
+
+def _cmd_correct(args, progress: _Progress) -> None:
+    from .api import correct_file
+
+    progress.step(f"correcting {args.source}")
+    summary = correct_file(args.source, args.coil, args.corrected, warp_outputs=_warp_outputs(args),
+                           frame=_frame_spec(args), mode=args.mode, slice_axis=_slice_axis(args),
+                           order=args.order, jacobian=not args.no_jacobian, fill=args.fill,
+                           keep_dtype=args.keep_dtype, progress=progress.volumes)
+    _print_warp_summary(summary)
+    print(f"wrote            {args.corrected}")
+
+
+def _cmd_describe(args, progress: _Progress) -> None:
+    from .api import displacement_table
+    from .io.coilfile import coil_sha256, load_coil
+
+    coil = load_coil(args.coil)
+    table = displacement_table(coil)
+    info = {"label": coil.label, "sha256": coil_sha256(args.coil), "degree": coil.degree,
+            "valid_radius_mm": coil.valid_radius_mm, "source": coil.source,
+            "reference_radius_mm": {a: coil.axes[a].reference_radius_mm for a in "xyz"},
+            "displacement": table}
+    if args.json:
+        print(json.dumps(info, indent=2))
+        return
+    print(f"{coil.label}\n  sha256 {info['sha256']}\n  degree {coil.degree}, valid radius "
+          f"{coil.valid_radius_mm:g} mm, source: {coil.source.get('kind', 'unknown')}")
+    print("  radius (mm)   max |d| (mm)   rms |d| (mm)")
+    for row in table:
+        flag = "" if row["inside_valid_radius"] else "   beyond valid radius"
+        print(f"  {row['radius_mm']:10.0f}   {row['max_mm']:12.3f}   {row['rms_mm']:12.3f}{flag}")
+
+
+def _cmd_import(args, progress: _Progress) -> None:
+    from .io.coilfile import import_table, save_coil
+
+    model = import_table(args.table, normalisation=args.normalisation,
+                         condon_shortley=args.condon_shortley,
+                         reference_radius_mm=args.reference_radius_mm,
+                         valid_radius_mm=args.valid_radius_mm,
+                         gradient_mT_per_m=args.gradient_mT_per_m, label=args.label,
+                         description=args.description, date=args.date, kind=args.source_kind)
+    save_coil(model, args.output)
+    print(f"wrote {args.output} (degree {model.degree})")
+
+
+def _cmd_demo(args, progress: _Progress) -> None:
+    from .demo import run_demo
+
+    result = run_demo(args.outdir, step=progress.step)
+    w, before, after = result["warp"], result["before"], result["after"]
+    print("nl_unwarp demo: FICTIONAL gradient system, synthetic phantom")
+    _print_warp_summary(w)
+    print("                      before      after")
+    print(f"marker error max  {before['marker_error_max_mm']:9.3f}  {after['marker_error_max_mm']:9.3f}  mm")
+    print(f"marker error mean {before['marker_error_mean_mm']:9.3f}  {after['marker_error_mean_mm']:9.3f}  mm")
+    print(f"uniformity dev.   {100 * before['uniformity_max_deviation']:8.3f}%  "
+          f"{100 * after['uniformity_max_deviation']:8.3f}%")
+    print(f"outputs in {Path(args.outdir)}")
+    print(CAUTION)
+
+
+COMMANDS = {"warp": _cmd_warp, "correct": _cmd_correct, "describe": _cmd_describe,
+            "import": _cmd_import, "demo": _cmd_demo}
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the CLI; returns the exit code."""
+    args = build_parser().parse_args(argv)
+    logging.basicConfig(format=f"{PROG}: warning: %(message)s", level=logging.WARNING)
+    progress = _Progress(args.quiet)
+    try:
+        COMMANDS[args.command](args, progress)
+    except InputError as exc:
+        print(f"{PROG}: error: {exc}", file=sys.stderr)
+        return 1
+    except MemoryError:
+        print(f"{PROG}: error: out of memory", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        print(f"{PROG}: interrupted; no output was left half-written", file=sys.stderr)
+        return 1
+    progress.step("done")
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
