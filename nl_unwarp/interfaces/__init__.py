@@ -1,0 +1,1 @@
+"""nipype Interfaces: thin wrappers over the library functions of nl_unwarp."""
