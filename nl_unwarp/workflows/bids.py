@@ -1,0 +1,79 @@
+"""A BIDS dataset: one :func:`~nl_unwarp.workflows.unwarp.init_unwarp_wf` per planned image, and a sink."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+from nipype.pipeline import engine as pe
+
+__all__ = ["image_workflow_name", "init_bids_unwarp_wf"]
+
+
+def image_workflow_name(relpath: str) -> str:
+    """A nipype-safe node name for an image (``sub-01/anat/sub-01_T1w.nii.gz`` -> ``sub_01_T1w``)."""
+    stem = Path(relpath).name.split(".")[0]
+    return re.sub(r"[^A-Za-z0-9]", "_", stem)
+
+
+def init_bids_unwarp_wf(*, plan, output_dir: str | Path, site_config: str | Path | None = None,
+                        coil_override: str | Path | None = None, jacobian: bool = True,
+                        order: int = 3, emit_warp_for_skipped: bool = False,
+                        name: str = "bids_unwarp_wf"):
+    """Correct every planned image of a dataset and write the derivatives.
+
+    Parameters
+    ----------
+    plan : nl_unwarp.bids.plan.Plan
+        Decisions made beforehand (``make_plan``); images with a problem must
+        have been dealt with (``plan.raise_problems()``).
+    output_dir : path
+        Root of the derivatives dataset.
+    site_config, coil_override : path, optional
+        As given to the plan.
+    jacobian, order
+        Resampling options.
+    emit_warp_for_skipped : bool
+        For images the scanner corrected in 3D, still write the field and
+        Jacobian map (no corrected image).
+    name : str
+
+    Returns
+    -------
+    nipype Workflow
+        No inputnode/outputnode: every input is fixed by the plan, every
+        output goes to the derivatives dataset.
+    """
+    from nl_unwarp.interfaces.bids import WriteDerivatives
+
+    from .unwarp import init_unwarp_wf
+
+    workflow = pe.Workflow(name=name)
+    parameters = {"interpolation_order": order, "jacobian": jacobian}
+    for row in plan.rows:
+        if row.problem:
+            raise ValueError(f"{row.relpath}: {row.problem} (call plan.raise_problems() first)")
+        skipped = row.decision.action == "skip"
+        if skipped and not emit_warp_for_skipped:
+            continue
+        label = image_workflow_name(row.relpath)
+        image_wf = init_unwarp_wf(resample=not skipped, jacobian=jacobian, order=order,
+                                  name=f"{label}_wf")
+        inputs = image_wf.get_node("inputnode").inputs
+        inputs.in_file = row.path
+        inputs.metadata = row.metadata
+        if site_config is not None:
+            inputs.site_config = str(site_config)
+        if coil_override is not None:
+            inputs.coil_override = str(coil_override)
+        if row.decision.isocenter_offset_mm is not None:
+            inputs.isocenter_offset_mm = list(row.decision.isocenter_offset_mm)
+        sink = pe.Node(WriteDerivatives(out_dir=str(output_dir), source_relpath=row.relpath,
+                                        metadata=row.metadata, parameters=parameters,
+                                        companions=row.companions), name=f"{label}_sink",
+                       run_without_submitting=True)
+        fields = ["field", "jacobian", "magnitude", "summary", "decision"]
+        if not skipped:
+            fields.append("corrected")
+        workflow.connect([(image_wf, sink, [(f"outputnode.{f}", f) for f in fields])])
+    return workflow
