@@ -1,0 +1,241 @@
+"""Folding a chain into one field (nl_unwarp.compose), checked against ITK.
+
+Reference: SimpleITK's ``TransformToDisplacementField`` of a
+``CompositeTransform`` gives the composed displacement of ITK itself on a
+target grid (ITK applies its list's last member first: CONVENTIONS.md 4).
+A plain-numpy path in the module (:func:`sample_field`) is a second,
+independently written reference for the compiled kernel.
+"""
+
+from __future__ import annotations
+
+import logging
+
+import numpy as np
+import pytest
+import SimpleITK as sitk
+
+from nl_unwarp.compose import (
+    AffineStep,
+    CoverageError,
+    FieldStep,
+    affine_pull_points,
+    compose_chain,
+    grid_with_margin,
+    sample_field,
+)
+
+#: Kernel vs reference, mm: both double precision, output float32 (~1e-6 of 10 mm).
+KERNEL_TOL_MM = 1e-5
+#: Ours vs ITK: same trilinear rule; ITK's output field is float64, ours float32.
+ITK_TOL_MM = 1e-5
+LPS = np.array([-1.0, -1.0, 1.0])
+
+
+def _oblique(shape, zooms, angle_deg, centre) -> np.ndarray:
+    a = np.deg2rad(angle_deg)
+    rot = np.array([[np.cos(a), -np.sin(a), 0.0], [np.sin(a), np.cos(a), 0.0], [0.0, 0.0, 1.0]])
+    rot = rot @ np.array([[1.0, 0.0, 0.0], [0.0, np.cos(a / 2), -np.sin(a / 2)],
+                          [0.0, np.sin(a / 2), np.cos(a / 2)]])
+    aff = np.eye(4)
+    aff[:3, :3] = rot * np.asarray(zooms, float)
+    aff[:3, 3] = np.asarray(centre, float) - aff[:3, :3] @ ((np.asarray(shape) - 1) / 2.0)
+    return aff
+
+
+def _field(shape, affine, seed, amplitude_mm=3.0, jacobian=False) -> FieldStep:
+    rng = np.random.default_rng(seed)
+    disp = rng.normal(0.0, amplitude_mm, tuple(shape) + (3,)).astype(np.float32)
+    jac = rng.uniform(0.8, 1.2, tuple(shape)).astype(np.float32) if jacobian else None
+    return FieldStep(disp, affine, jac)
+
+
+def _affine(seed) -> AffineStep:
+    rng = np.random.default_rng(seed)
+    m = np.eye(4)
+    m[:3, :3] += rng.normal(0.0, 0.05, (3, 3))
+    m[:3, 3] = rng.normal(0.0, 4.0, 3)
+    return AffineStep(m)
+
+
+def _grid_points(shape, affine) -> np.ndarray:
+    ijk = np.stack(np.meshgrid(*[np.arange(n, dtype=float) for n in shape], indexing="ij"), -1)
+    return ijk @ affine[:3, :3].T + affine[:3, 3]
+
+
+def _reference(chain, points):
+    """Plain numpy: apply each step in turn; misses recorded."""
+    pts = points.reshape(-1, 3).copy()
+    factor = np.ones(len(pts))
+    missed = np.zeros(len(pts), bool)
+    for step in chain:
+        if isinstance(step, AffineStep):
+            pts = affine_pull_points(step.matrix_ras, pts)
+            continue
+        disp, inside = sample_field(step, pts)
+        if step.jacobian is not None:
+            jac_step = FieldStep(np.repeat(step.jacobian[..., None], 3, -1), step.affine)
+            factor *= np.where(inside, sample_field(jac_step, pts)[0][:, 0], 1.0)
+        pts = pts + disp
+        missed |= ~inside
+    return pts.reshape(points.shape), factor.reshape(points.shape[:-1]), missed.reshape(points.shape[:-1])
+
+
+def _chain():
+    g_shape = (20, 22, 18)
+    w_shape = (16, 18, 20)
+    g = _field(g_shape, _oblique(g_shape, (3.0, 3.0, 3.5), 12.0, (1.0, -2.0, 3.0)), 1, jacobian=True)
+    w = _field(w_shape, _oblique(w_shape, (3.5, 3.0, 3.0), -8.0, (0.0, 1.0, -1.0)), 2)
+    return [w, _affine(3), g]
+
+
+@pytest.mark.parametrize("target", ["axis", "oblique"])
+def test_kernel_matches_plain_reference(target):
+    chain = _chain()
+    shape = (14, 15, 13)
+    if target == "axis":
+        aff = np.diag([3.0, 3.0, 3.0, 1.0])
+        aff[:3, 3] = -np.array(shape) * 1.5
+    else:
+        aff = _oblique(shape, (2.5, 3.0, 3.2), 20.0, (0, 0, 0))
+    result = compose_chain(chain, shape, aff, on_outside="ignore")
+    points = _grid_points(shape, aff)
+    ref_pts, ref_factor, ref_missed = _reference(chain, points)
+    np.testing.assert_allclose(result.disp_ras_mm, ref_pts - points, atol=KERNEL_TOL_MM)
+    np.testing.assert_allclose(result.factor, ref_factor, rtol=1e-5)
+    np.testing.assert_array_equal(result.uncovered, ref_missed)
+    assert result.uncovered.any() and not result.uncovered.all()  # both cases exercised
+
+
+def _sitk_transform(step):
+    if isinstance(step, AffineStep):
+        lps = np.diag([-1.0, -1.0, 1.0, 1.0]) @ step.matrix_ras @ np.diag([-1.0, -1.0, 1.0, 1.0])
+        tx = sitk.AffineTransform(3)
+        tx.SetMatrix(tuple(lps[:3, :3].ravel()))
+        tx.SetTranslation(tuple(lps[:3, 3]))
+        return tx
+    disp_lps = (step.disp_ras_mm.astype(float) * LPS).transpose(2, 1, 0, 3)
+    img = sitk.GetImageFromArray(np.ascontiguousarray(disp_lps), isVector=True)
+    lps_aff = np.diag([-1.0, -1.0, 1.0]) @ step.affine[:3]
+    spacing = np.linalg.norm(lps_aff[:, :3], axis=0)
+    img.SetSpacing(tuple(spacing))
+    img.SetOrigin(tuple(lps_aff[:, 3]))
+    img.SetDirection(tuple((lps_aff[:, :3] / spacing).ravel()))
+    return sitk.DisplacementFieldTransform(sitk.Image(img))
+
+
+def test_composed_field_matches_itk_composite_transform():
+    chain = _chain()
+    shape = (12, 13, 11)
+    aff = _oblique(shape, (3.0, 2.8, 3.1), 5.0, (0.5, 0.0, 0.0))
+    ours = compose_chain(chain, shape, aff, on_outside="ignore")
+    # ITK order: the reverse of ours.
+    composite = sitk.CompositeTransform([_sitk_transform(s) for s in reversed(chain)])
+    ref_img = sitk.Image([int(n) for n in shape], sitk.sitkFloat32)
+    lps_aff = np.diag([-1.0, -1.0, 1.0]) @ aff[:3]
+    spacing = np.linalg.norm(lps_aff[:, :3], axis=0)
+    ref_img.SetSpacing(tuple(spacing))
+    ref_img.SetOrigin(tuple(lps_aff[:, 3]))
+    ref_img.SetDirection(tuple((lps_aff[:, :3] / spacing).ravel()))
+    itk_field = sitk.TransformToDisplacementField(composite, sitk.sitkVectorFloat64, ref_img.GetSize(),
+                                                  ref_img.GetOrigin(), ref_img.GetSpacing(),
+                                                  ref_img.GetDirection())
+    itk_ras = sitk.GetArrayFromImage(itk_field).transpose(2, 1, 0, 3) * LPS
+    np.testing.assert_allclose(ours.disp_ras_mm, itk_ras, atol=ITK_TOL_MM)
+    # Negative control: ITK's order given as ours is far off.
+    wrong = compose_chain(chain[::-1], shape, aff, on_outside="ignore")
+    assert np.abs(wrong.disp_ras_mm - itk_ras).max() > 100 * ITK_TOL_MM
+
+
+def test_identity_and_single_affine():
+    shape = (5, 6, 7)
+    aff = _oblique(shape, (2.0, 2.0, 2.0), 30.0, (3.0, 4.0, 5.0))
+    assert np.all(compose_chain([], shape, aff).disp_ras_mm == 0)
+    step = _affine(9)
+    got = compose_chain([step], shape, aff).disp_ras_mm
+    points = _grid_points(shape, aff)
+    # Closed form: q - p = (M - I) p + t.
+    expected = points @ (step.matrix_ras[:3, :3] - np.eye(3)).T + step.matrix_ras[:3, 3]
+    np.testing.assert_allclose(got, expected, atol=KERNEL_TOL_MM)
+    # Two affines fold into their matrix product (second applied after the first).
+    other = _affine(10)
+    both = compose_chain([step, other], shape, aff).disp_ras_mm
+    prod = other.matrix_ras @ step.matrix_ras
+    np.testing.assert_allclose(both, points @ (prod[:3, :3] - np.eye(3)).T + prod[:3, 3],
+                               atol=KERNEL_TOL_MM)
+
+
+def test_jacobian_factors_multiply_where_each_step_is_applied():
+    shape = (10, 10, 10)
+    aff = np.diag([2.0, 2.0, 2.0, 1.0])
+    aff[:3, 3] = -9.0
+    ijk = np.stack(np.meshgrid(*[np.arange(10.0)] * 3, indexing="ij"), -1)
+    # Jacobian map linear in x, so trilinear sampling is exact: J(x) = 1 + 0.01 x.
+    jac = (1.0 + 0.01 * (ijk @ aff[:3, :3].T + aff[:3, 3])[..., 0]).astype(np.float32)
+    g = FieldStep(np.zeros(shape + (3,), np.float32), aff, jac)
+    shift = np.eye(4)
+    shift[0, 3] = 3.0
+    result = compose_chain([AffineStep(shift), g, g], (3, 3, 3), np.diag([1.0, 1.0, 1.0, 1.0]))
+    x = _grid_points((3, 3, 3), np.eye(4))[..., 0] + 3.0
+    np.testing.assert_allclose(result.factor, (1.0 + 0.01 * x) ** 2, rtol=1e-6)
+    assert compose_chain([AffineStep(shift)], (2, 2, 2), np.eye(4)).factor is None
+
+
+def test_coverage_warns_raises_or_ignores(caplog):
+    shape = (6, 6, 6)
+    field = _field(shape, np.diag([2.0, 2.0, 2.0, 1.0]), 4, amplitude_mm=0.1)
+    target = np.diag([2.0, 2.0, 2.0, 1.0])
+    target[:3, 3] = -4.0  # reaches 4 mm beyond the field's first voxels
+    with caplog.at_level(logging.WARNING, logger="nl_unwarp"):
+        result = compose_chain([field], shape, target)
+    assert result.uncovered.any() and "identity" in caplog.text
+    with pytest.raises(CoverageError, match="outside"):
+        compose_chain([field], shape, target, on_outside="raise")
+    caplog.clear()
+    with caplog.at_level(logging.WARNING, logger="nl_unwarp"):
+        compose_chain([field], shape, target, on_outside="ignore")
+    assert caplog.text == ""
+
+
+def test_points_landing_outside_the_raw_image_do_not_count():
+    # A field exactly on the raw grid: a target point off the field lands
+    # (identity) off the raw grid too, where the image is filled anyway.
+    shape = (6, 6, 6)
+    raw = np.diag([2.0, 2.0, 2.0, 1.0])
+    field = _field(shape, raw, 5, amplitude_mm=0.1)
+    target = raw.copy()
+    target[:3, 3] = -4.0
+    result = compose_chain([field], shape, target, raw_shape=shape, raw_affine=raw, on_outside="raise")
+    assert not result.uncovered.any()
+    # A larger raw image than the field: the same points now count.
+    big = raw.copy()
+    big[:3, 3] = -10.0
+    with pytest.raises(CoverageError):
+        compose_chain([field], shape, target, raw_shape=(12, 12, 12), raw_affine=big, on_outside="raise")
+
+
+@pytest.mark.parametrize("margin_mm", [0.0, 5.0, 16.0])
+def test_grid_with_margin(margin_mm):
+    shape = (10, 1, 8)
+    aff = _oblique(shape, (2.0, 3.0, 2.5), 15.0, (1.0, 2.0, 3.0))
+    new_shape, new_aff = grid_with_margin(shape, aff, margin_mm)
+    zooms = np.array([2.0, 3.0, 2.5])
+    pad = np.ceil(margin_mm / zooms).astype(int)
+    assert new_shape == tuple(int(n) for n in np.array(shape) + 2 * pad)
+    # Old voxel 0 is new voxel ``pad``: same world point.
+    np.testing.assert_allclose(new_aff[:3, :3] @ pad + new_aff[:3, 3], aff[:3, 3], atol=1e-9)
+    np.testing.assert_allclose(new_aff[:3, :3], aff[:3, :3])
+    assert np.all(pad * zooms >= margin_mm - 1e-9)
+
+
+def test_bad_steps_are_refused():
+    with pytest.raises(ValueError, match="last row"):
+        AffineStep(np.ones((4, 4)))
+    with pytest.raises(ValueError, match=r"\(X, Y, Z, 3\)"):
+        FieldStep(np.zeros((3, 3, 3)), np.eye(4))
+    with pytest.raises(ValueError, match="jacobian"):
+        FieldStep(np.zeros((3, 3, 3, 3)), np.eye(4), np.ones((2, 2, 2)))
+    with pytest.raises(TypeError):
+        compose_chain(["not a step"], (2, 2, 2), np.eye(4))
+    with pytest.raises(ValueError, match="on_outside"):
+        compose_chain([], (2, 2, 2), np.eye(4), on_outside="sometimes")
