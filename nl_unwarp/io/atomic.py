@@ -37,11 +37,14 @@ class OutputSet:
 
     def __init__(self) -> None:
         self._pending: list[tuple[Path, Path]] = []
+        self._made_dirs: list[Path] = []
 
     def reserve(self, path: str | os.PathLike) -> Path:
         """Temporary path to write the file that will become ``path``."""
         final = Path(path)
+        missing = [p for p in [final.parent, *final.parent.parents] if not p.exists()]
         final.parent.mkdir(parents=True, exist_ok=True)
+        self._made_dirs.extend(missing)
         tmp = _temporary_name(final)
         self._pending.append((tmp, final))
         return tmp
@@ -53,6 +56,7 @@ class OutputSet:
             os.replace(tmp, final)
             done.append(final)
         self._pending = []
+        self._made_dirs = []
         return done
 
     def discard(self) -> None:
@@ -60,7 +64,12 @@ class OutputSet:
         for tmp, _ in self._pending:
             with contextlib.suppress(FileNotFoundError):
                 tmp.unlink()
+        # Folders this set created, deepest first, if nothing else was put in them.
+        for folder in self._made_dirs:
+            with contextlib.suppress(OSError):
+                folder.rmdir()
         self._pending = []
+        self._made_dirs = []
 
     def __enter__(self) -> "OutputSet":
         return self
