@@ -115,6 +115,14 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("demo", help="run the main job on the embedded fictional demo")
     p.add_argument("outdir", help="folder for the demo's images and summary")
+    p.add_argument("--phantom-only", action="store_true",
+                   help="only the phantom check, not the multi-site BIDS pipeline")
+    p.add_argument("--nprocs", type=int, default=2, help="processes for the BIDS pipeline (default: 2)")
+
+    p = sub.add_parser("plan", help="print every image's scanner rule and decision (computes nothing)")
+    p.add_argument("bids_dir", help="BIDS dataset")
+    _add_bids_selection(p)
+    p.add_argument("--json", action="store_true", help="print JSON")
     return parser
 
 
@@ -217,20 +225,146 @@ def _cmd_demo(args, progress: _Progress) -> None:
     print(f"uniformity dev.   {100 * before['uniformity_max_deviation']:8.3f}%  "
           f"{100 * after['uniformity_max_deviation']:8.3f}%")
     print(f"outputs in {Path(args.outdir)}")
+    if not args.phantom_only:
+        from .bids.demodata import run_bids_demo
+
+        rows = run_bids_demo(Path(args.outdir) / "bids_demo", n_procs=args.nprocs, step=progress.step)
+        print("\nmulti-site BIDS pipeline: FICTIONAL sites, scanners and subjects")
+        _print_run_rows(rows)
+        print(f"derivatives in {Path(args.outdir) / 'bids_demo' / 'derivatives'}")
+    print(CAUTION)
+
+
+# BIDS: the participant-level run (BIDS-App convention) and the decision table.
+
+PLUGINS_HELP = ("nipype execution plugin: Linear, MultiProc (default), or a scheduler plugin "
+                "(SLURM, SLURMGraph, SGE, SGEGraph, PBS, PBSGraph, LSF, Condor, ...)")
+
+
+def _add_bids_selection(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("images")
+    g.add_argument("--participant-label", nargs="+", default=[], metavar="LABEL",
+                   help="participants to process (with or without 'sub-'; default: all)")
+    g.add_argument("--session-label", nargs="+", default=[], metavar="LABEL", help="sessions")
+    g.add_argument("--datatype", nargs="+", default=[], metavar="TYPE",
+                   help="datatypes (default: anat func dwi fmap perf)")
+    g.add_argument("--suffix", nargs="+", default=[], metavar="SUFFIX", help="suffixes (T1w, bold, ...)")
+    g.add_argument("--task", nargs="+", default=[], metavar="TASK", help="tasks")
+    g = p.add_argument_group("scanners")
+    g.add_argument("--site-config", help="site configuration (nl_unwarp-site JSON, see docs/site-config.md)")
+    g.add_argument("--coil", help="coil model used for every image instead of the site configuration's")
+    g.add_argument("--isocenter-offset", nargs=3, type=float, metavar=("DX", "DY", "DZ"),
+                   help="device coordinates (mm) of the world origin for every image; overrides "
+                        "TablePosition")
+
+
+def build_bids_app_parser() -> argparse.ArgumentParser:
+    """``nl-unwarp BIDS_DIR OUTPUT_DIR participant [options]`` (BIDS-App convention)."""
+    p = argparse.ArgumentParser(
+        prog=f"{PROG} BIDS_DIR OUTPUT_DIR participant",
+        description="Correct a BIDS dataset for gradient nonlinearity into a derivatives dataset. "
+                    + CAUTION)
+    p.add_argument("bids_dir", help="BIDS dataset (read only)")
+    p.add_argument("output_dir", help="derivatives dataset to write (outside the input dataset)")
+    p.add_argument("analysis_level", choices=["participant"], help="participant: one image at a time")
+    p.add_argument("--quiet", action="store_true", help="no progress messages")
+    _add_bids_selection(p)
+    g = p.add_argument_group("correction")
+    g.add_argument("--order", type=int, choices=ORDERS, default=3, help="B-spline order (default: 3)")
+    g.add_argument("--no-jacobian", action="store_true", help="do not multiply by the Jacobian determinant")
+    g.add_argument("--emit-warp-for-skipped", action="store_true",
+                   help="write the field and Jacobian map also for images the scanner corrected in 3D")
+    g = p.add_argument_group("execution")
+    g.add_argument("-w", "--work-dir", help="nipype work directory (cache; default: beside OUTPUT_DIR)")
+    g.add_argument("--plugin", default="MultiProc", help=PLUGINS_HELP)
+    g.add_argument("--plugin-args", default="{}",
+                   help="plugin arguments as JSON, e.g. '{\"sbatch_args\": \"-p short\"}', or @FILE")
+    g.add_argument("--nprocs", type=int, help="MultiProc processes (default: all cores)")
+    g.add_argument("--omp-nthreads", type=int, help="threads per process")
+    return p
+
+
+def _bids_options(args):
+    from .bids.app import RunOptions
+
+    return RunOptions(
+        bids_dir=Path(args.bids_dir), output_dir=Path(args.output_dir) if getattr(args, "output_dir", None)
+        else None, site_config=Path(args.site_config) if args.site_config else None,
+        coil_override=Path(args.coil) if args.coil else None, participants=args.participant_label,
+        sessions=args.session_label, datatypes=args.datatype, suffixes=args.suffix, tasks=args.task,
+        isocenter_offset_mm=tuple(args.isocenter_offset) if args.isocenter_offset else None)
+
+
+def _plugin_args(text: str) -> dict:
+    if text.startswith("@"):
+        text = Path(text[1:]).read_text(encoding="utf-8")
+    try:
+        value = json.loads(text)
+    except ValueError as exc:
+        raise InputError("--plugin-args", f"not valid JSON ({exc})") from None
+    if not isinstance(value, dict):
+        raise InputError("--plugin-args", "must be a JSON object")
+    return value
+
+
+def _print_run_rows(rows: list[dict]) -> None:
+    width = max(len(r["image"]) for r in rows)
+    print(f"{'image':{width}}  {'site':10}  {'decision':12}  max |d| (mm)")
+    for r in rows:
+        disp = "-" if r["displacement_max_mm"] is None else f"{r['displacement_max_mm']:.3f}"
+        print(f"{r['image']:{width}}  {r['site'] or '-':10}  {r['decision']:12}  {disp:>12}")
+
+
+def _cmd_plan(args, progress: _Progress) -> None:
+    from .bids.app import build_plan
+    from .bids.plan import format_table
+
+    plan = build_plan(_bids_options(args))
+    if args.json:
+        print(json.dumps([{"image": r.relpath, "status": r.status, "problem": r.problem,
+                           "decision": r.decision.as_record() if r.decision else None}
+                          for r in plan.rows], indent=2))
+    else:
+        print(format_table(plan))
+    if plan.problems:
+        raise InputError(args.bids_dir, f"{len(plan.problems)} image(s) with problems (see the table)")
+
+
+def _cmd_bids_app(args, progress: _Progress) -> None:
+    from .bids.app import build_plan, run
+
+    options = _bids_options(args)
+    options.work_dir = Path(args.work_dir) if args.work_dir else None
+    options.plugin, options.plugin_args = args.plugin, _plugin_args(args.plugin_args)
+    options.n_procs, options.omp_nthreads = args.nprocs, args.omp_nthreads
+    options.order, options.jacobian = args.order, not args.no_jacobian
+    options.emit_warp_for_skipped = args.emit_warp_for_skipped
+    progress.step(f"indexing {args.bids_dir} and deciding per image")
+    plan = build_plan(options)
+    progress.step(f"running {len(plan.rows)} image(s) with the {options.plugin} plugin")
+    rows, failures = run(options, plan=plan)
+    _print_run_rows(rows)
+    if failures:
+        raise InputError(args.output_dir, f"{len(failures)} step(s) crashed (first: {failures[0]}); "
+                                          "finished derivatives were kept: re-run the same command "
+                                          "to complete the rest")
     print(CAUTION)
 
 
 COMMANDS = {"warp": _cmd_warp, "correct": _cmd_correct, "describe": _cmd_describe,
-            "import": _cmd_import, "demo": _cmd_demo}
+            "import": _cmd_import, "demo": _cmd_demo, "plan": _cmd_plan}
 
 
 def main(argv: list[str] | None = None) -> int:
     """Run the CLI; returns the exit code."""
-    args = build_parser().parse_args(argv)
+    argv = sys.argv[1:] if argv is None else list(argv)
+    # BIDS-App convention: the first positional is a dataset, not a subcommand.
+    bids_app = bool(argv) and not argv[0].startswith("-") and argv[0] not in COMMANDS
+    args = build_bids_app_parser().parse_args(argv) if bids_app else build_parser().parse_args(argv)
     logging.basicConfig(format=f"{PROG}: warning: %(message)s", level=logging.WARNING)
     progress = _Progress(args.quiet)
     try:
-        COMMANDS[args.command](args, progress)
+        (_cmd_bids_app if bids_app else COMMANDS[args.command])(args, progress)
     except InputError as exc:
         print(f"{PROG}: error: {exc}", file=sys.stderr)
         return 1

@@ -165,8 +165,10 @@ def _session(root: Path, sub: str, ses: str, site: DemoSite, table_mm, simulate:
     t1_tokens = ["ORIGINAL", "PRIMARY", "M"] + (list(site.tokens_3d) if site.t1w_corrected_3d else [])
     data, aff = _image(SHAPE_3D, (VOXEL_MM,) * 3, coil_file=None if site.t1w_corrected_3d else coil,
                        table_mm=table_mm, throughplane_only=False)
-    _save(base / "anat" / f"{stem}_T1w.nii.gz", data, aff,
-          dict(common, MRAcquisitionType="3D", ImageType=t1_tokens))
+    t1 = dict(common, MRAcquisitionType="3D", ImageType=t1_tokens)
+    if not site.t1w_corrected_3d:
+        t1["NonlinearGradientCorrection"] = False
+    _save(base / "anat" / f"{stem}_T1w.nii.gz", data, aff, t1)
 
     data, aff = _image(SHAPE_2D, (VOXEL_MM, VOXEL_MM, SLICE_MM), coil_file=coil, table_mm=table_mm,
                        throughplane_only=True)
@@ -232,3 +234,33 @@ def make_dataset(root: str | Path, *, subjects_per_site: int = 2, simulate: bool
                 _session(root, sub, "2", site, MOVED_TABLE_MM, simulate)
     (root / "participants.tsv").write_text("\n".join(participants) + "\n", encoding="utf-8")
     return root
+
+
+def run_bids_demo(outdir: str | Path, *, n_procs: int = 2, subjects_per_site: int = 2,
+                  step=None) -> list[dict]:
+    """Generate the invented dataset and run the whole BIDS pipeline on it (MultiProc).
+
+    Writes ``outdir/rawdata`` (the dataset), ``outdir/coils`` (the fictional coil
+    models, outside the dataset), ``outdir/sites.json``, ``outdir/derivatives``
+    and ``outdir/work``. Returns the per-image summary rows of
+    :func:`nl_unwarp.bids.app.run`.
+    """
+    import os
+
+    from .app import RunOptions, run
+
+    say = step or (lambda _msg: None)
+    outdir = Path(outdir)
+    say("generating the invented two-site BIDS dataset")
+    raw = make_dataset(outdir / "rawdata", subjects_per_site=subjects_per_site)
+    write_coils(outdir / "coils")
+    os.environ[COIL_DIR_VARIABLE] = str((outdir / "coils").resolve())
+    config = write_site_config(outdir / "sites.json")
+    say(f"running the BIDS pipeline (MultiProc, {n_procs} processes)")
+    rows, failures = run(RunOptions(bids_dir=raw, output_dir=outdir / "derivatives", site_config=config,
+                                    work_dir=outdir / "work", plugin="MultiProc", n_procs=n_procs))
+    if failures:
+        from ..errors import InputError
+
+        raise InputError(str(outdir / "work"), f"{len(failures)} pipeline step(s) crashed: {failures[0]}")
+    return rows

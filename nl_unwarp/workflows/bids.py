@@ -62,10 +62,11 @@ def init_bids_unwarp_wf(*, plan, output_dir: str | Path, site_config: str | Path
         inputs = image_wf.get_node("inputnode").inputs
         inputs.in_file = row.path
         inputs.metadata = row.metadata
+        # Absolute paths: nodes run in their own folders (and maybe on other hosts).
         if site_config is not None:
-            inputs.site_config = str(site_config)
+            inputs.site_config = str(Path(site_config).resolve())
         if coil_override is not None:
-            inputs.coil_override = str(coil_override)
+            inputs.coil_override = str(Path(coil_override).resolve())
         if row.decision.isocenter_offset_mm is not None:
             inputs.isocenter_offset_mm = list(row.decision.isocenter_offset_mm)
         sink = pe.Node(WriteDerivatives(out_dir=str(output_dir), source_relpath=row.relpath,

@@ -1,0 +1,163 @@
+"""The BIDS-App run: plan, build the workflow, run it with a nipype plugin, report.
+
+The CLI (``nl-unwarp BIDS_DIR OUTPUT_DIR participant``) parses its options into
+:class:`RunOptions` and calls :func:`run`; nothing here parses arguments.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from ..errors import InputError
+from ..io.atomic import OutputSet
+from .names import derivative_name
+from .plan import Plan, check_dirs, index_dataset, make_plan
+
+__all__ = ["RunOptions", "build_plan", "run", "summary_rows"]
+
+log = logging.getLogger("nl_unwarp")
+DECISIONS_FILE = "decisions.tsv"
+
+
+@dataclass
+class RunOptions:
+    """Everything a participant-level run needs."""
+
+    bids_dir: Path
+    output_dir: Path | None = None
+    site_config: Path | None = None
+    coil_override: Path | None = None
+    participants: list[str] = field(default_factory=list)
+    sessions: list[str] = field(default_factory=list)
+    datatypes: list[str] = field(default_factory=list)
+    suffixes: list[str] = field(default_factory=list)
+    tasks: list[str] = field(default_factory=list)
+    isocenter_offset_mm: tuple[float, float, float] | None = None
+    work_dir: Path | None = None
+    plugin: str = "MultiProc"
+    plugin_args: dict = field(default_factory=dict)
+    n_procs: int | None = None
+    omp_nthreads: int | None = None
+    order: int = 3
+    jacobian: bool = True
+    emit_warp_for_skipped: bool = False
+
+
+def build_plan(options: RunOptions) -> Plan:
+    """Index the dataset and decide for every selected image (nothing computed)."""
+    from .siteconfig import SiteConfig, load_site_config
+
+    check_dirs(options.bids_dir, options.output_dir, options.work_dir)
+    if options.site_config is None and options.coil_override is None:
+        raise InputError("--site-config", "give a site configuration (or a coil model override)")
+    config = (load_site_config(options.site_config) if options.site_config is not None
+              else SiteConfig.empty())
+    layout = index_dataset(options.bids_dir)
+    plan = make_plan(layout, config, participants=options.participants, sessions=options.sessions,
+                     datatypes=options.datatypes, suffixes=options.suffixes, tasks=options.tasks,
+                     coil_override=options.coil_override,
+                     isocenter_offset_mm=options.isocenter_offset_mm)
+    if not plan.rows:
+        raise InputError(str(options.bids_dir), "no image matches the participant/session/datatype/"
+                                                "suffix filters")
+    return plan
+
+
+def _plugin_args(options: RunOptions) -> dict:
+    args = dict(options.plugin_args)
+    if options.plugin == "MultiProc":
+        args.setdefault("n_procs", options.n_procs or os.cpu_count() or 1)
+        # Fresh worker processes: forking a parent whose numba thread pool has
+        # started is unsafe (numba documentation, "threading layers").
+        args.setdefault("mp_context", "forkserver")
+    return args
+
+
+def _set_threads(n: int | None) -> None:
+    if n:
+        for var in ("NUMBA_NUM_THREADS", "OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+            os.environ[var] = str(n)
+
+
+def summary_rows(plan: Plan, output_dir: Path) -> list[dict]:
+    """Per image: decision, reason, rule, and the maximum displacement if a derivative exists."""
+    rows = []
+    for r in plan.rows:
+        row = {"image": r.relpath, "rule": r.decision.rule, "site": r.decision.site,
+               "decision": r.decision.action, "reason": r.decision.reason,
+               "warnings": "; ".join(r.decision.warnings), "displacement_max_mm": None, "done": False}
+        sidecar = output_dir / derivative_name(r.relpath, "field", ext=".json")
+        if sidecar.exists():
+            prov = json.loads(sidecar.read_text(encoding="utf-8"))["NLUnwarpProvenance"]
+            row["displacement_max_mm"] = prov["warp"]["displacement_max_mm"]
+            row["done"] = True
+        rows.append(row)
+    return rows
+
+
+def _write_decisions(rows: list[dict], output_dir: Path) -> None:
+    cols = ["image", "site", "rule", "decision", "displacement_max_mm", "reason", "warnings"]
+    lines = ["\t".join(cols)]
+    for row in rows:
+        value = {**row, "displacement_max_mm": "n/a" if row["displacement_max_mm"] is None
+                 else f"{row['displacement_max_mm']:.4f}"}
+        lines.append("\t".join(str(value[c]) for c in cols))
+    with OutputSet() as out:
+        out.reserve(output_dir / DECISIONS_FILE).write_text("\n".join(lines) + "\n", encoding="utf-8")
+        out.reserve(output_dir / ".bidsignore").write_text(DECISIONS_FILE + "\n", encoding="utf-8")
+
+
+def run(options: RunOptions, *, plan: Plan | None = None) -> tuple[list[dict], list[str]]:
+    """Correct the selected images and write the derivatives dataset.
+
+    Returns
+    -------
+    rows : list of dict
+        :func:`summary_rows` after the run.
+    failures : list of str
+        Nodes that crashed (their images have no derivative; a re-run redoes
+        only what is missing, the rest comes from the work directory's cache).
+    """
+    from nipype import config as nipype_config
+
+    from ..workflows.bids import init_bids_unwarp_wf
+    from .derivatives import ensure_dataset, remove_partial_files
+
+    plan = plan or build_plan(options)
+    plan.raise_problems()
+    output_dir = Path(options.output_dir).resolve()
+    work_dir = Path(options.work_dir or output_dir.parent / "nl_unwarp_work").resolve()
+    ensure_dataset(output_dir, options.bids_dir)
+    for stale in remove_partial_files(output_dir):
+        log.warning("removed %s, left by an interrupted run", stale)
+    _set_threads(options.omp_nthreads)
+    workflow = init_bids_unwarp_wf(plan=plan, output_dir=output_dir, site_config=options.site_config,
+                                   coil_override=options.coil_override, jacobian=options.jacobian,
+                                   order=options.order,
+                                   emit_warp_for_skipped=options.emit_warp_for_skipped)
+    workflow.base_dir = str(work_dir)
+    crash_dir = work_dir / "crash"
+    nipype_config.update_config({"execution": {"crashdump_dir": str(crash_dir), "hash_method": "content",
+                                               "crashfile_format": "txt"},
+                                 "logging": {"workflow_level": "WARNING", "interface_level": "WARNING",
+                                             "utils_level": "WARNING"}})
+    from nipype import logging as nipype_logging
+
+    nipype_logging.update_logging(nipype_config)
+    workflow.config["execution"].update({"crashdump_dir": str(crash_dir), "hash_method": "content",
+                                         "crashfile_format": "txt", "stop_on_first_crash": False})
+    failures = []
+    if workflow.list_node_names():
+        before = set(crash_dir.glob("crash-*")) if crash_dir.exists() else set()
+        try:
+            workflow.run(plugin=options.plugin, plugin_args=_plugin_args(options))
+        except RuntimeError:
+            after = set(crash_dir.glob("crash-*")) if crash_dir.exists() else set()
+            failures = sorted(str(p) for p in after - before) or ["see the nipype log"]
+    rows = summary_rows(plan, output_dir)
+    _write_decisions(rows, output_dir)
+    return rows, failures
