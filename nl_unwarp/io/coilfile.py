@@ -46,8 +46,30 @@ _AXIS_KEYS = {"normalisation", "condon_shortley", "reference_radius_mm", "valid_
               "cos", "sin"}
 
 
-def _reject_constant(name: str):
-    raise ValueError(f"{name} is not a number")
+class _Constant(str):
+    """A NaN/Infinity literal (not JSON, RFC 8259), kept only to report where it is."""
+
+
+def _find_constant(obj, keys: tuple = ()) -> tuple | None:
+    """Key path of the first non-finite literal in a parsed document, the literal last."""
+    if isinstance(obj, _Constant):
+        return keys + (str(obj),)
+    children = obj.items() if isinstance(obj, dict) else enumerate(obj) if isinstance(obj, list) else ()
+    for key, value in children:
+        found = _find_constant(value, keys + (key,))
+        if found is not None:
+            return found
+    return None
+
+
+def _constant_message(found: tuple) -> str:
+    *keys, literal = found
+    names = [k for k in keys if isinstance(k, str)]
+    if len(names) >= 3 and names[0] == "axes":
+        where, key = f"axis {names[1]}: ", ".".join(names[2:])
+    else:
+        where, key = "", ".".join(names) or "(top level)"
+    return f"{where}key '{key}': {literal} is not a number; write a finite value"
 
 
 def coil_sha256(path: str | Path) -> str:
@@ -77,11 +99,14 @@ def load_coil(path: str | Path) -> CoilModel:
     path = Path(path)
     src = str(path)
     try:
-        doc = json.loads(path.read_text(encoding="utf-8"), parse_constant=_reject_constant)
+        doc = json.loads(path.read_text(encoding="utf-8"), parse_constant=_Constant)
     except FileNotFoundError:
         raise InputError(src, "coil model file not found") from None
     except (ValueError, UnicodeDecodeError) as exc:
         raise InputError(src, f"not valid JSON ({exc})") from None
+    found = _find_constant(doc)
+    if found is not None:
+        raise InputError(src, _constant_message(found))
     return model_from_document(doc, src)
 
 
@@ -92,7 +117,7 @@ def model_from_document(doc: dict, src: str) -> CoilModel:
     _no_unknown(doc, _TOP_KEYS, src, "")
     if doc.get("format") != FORMAT_NAME:
         raise InputError(src, f"key 'format' must be {FORMAT_NAME!r}, got {doc.get('format')!r}")
-    if doc.get("format_version") != FORMAT_VERSION:
+    if doc.get("format_version") != FORMAT_VERSION or isinstance(doc.get("format_version"), bool):
         raise InputError(src, f"key 'format_version': this version reads {FORMAT_VERSION}, "
                               f"got {doc.get('format_version')!r}")
     if doc.get("frame", "device") != "device":
@@ -103,6 +128,11 @@ def model_from_document(doc: dict, src: str) -> CoilModel:
     _no_unknown(source, _SOURCE_KEYS, src, "source.")
     if "kind" in source and source["kind"] not in SOURCE_KINDS:
         raise InputError(src, f"key 'source.kind' must be one of {', '.join(SOURCE_KINDS)}")
+    texts = {"label": doc.get("label", ""), "source.description": source.get("description", ""),
+             "source.date": source.get("date", "")}
+    for key, value in texts.items():
+        if not isinstance(value, str):
+            raise InputError(src, f"key '{key}' must be a string, got {value!r}")
     axes_doc = doc.get("axes")
     if not isinstance(axes_doc, dict):
         raise InputError(src, "key 'axes' missing or not an object")
@@ -112,7 +142,7 @@ def model_from_document(doc: dict, src: str) -> CoilModel:
         if name not in axes_doc:
             raise InputError(src, f"axis {name!r} missing under 'axes'")
         axes[name] = _axis_from_document(axes_doc[name], src, name)
-    return CoilModel(axes=axes, label=str(doc.get("label", "unnamed")), source=dict(source))
+    return CoilModel(axes=axes, label=doc.get("label", "unnamed"), source=dict(source))
 
 
 def _no_unknown(obj: dict, allowed: set, src: str, prefix: str) -> None:
@@ -212,8 +242,10 @@ def model_to_document(model: CoilModel) -> dict:
 def _format_document(doc: dict) -> str:
     """JSON text with one ``[n, m, value]`` term per line (easy to read and diff)."""
     text = json.dumps(doc, indent=2, allow_nan=False)
-    # Collapse each innermost [n, m, value] list onto one line.
-    text = re.sub(r"\[\s*(-?\d+),\s*(-?\d+),\s*([^\s\[\]]+)\s*\]", r"[\1, \2, \3]", text)
+    # Collapse each innermost [n, m, value] list onto one line. Requiring the
+    # line breaks of indent=2 keeps text inside strings (where json.dumps
+    # escapes line breaks) untouched.
+    text = re.sub(r"\[\n\s*(-?\d+),\n\s*(-?\d+),\n\s*([^\s\[\]]+)\n\s*\]", r"[\1, \2, \3]", text)
     return text + "\n"
 
 
@@ -270,18 +302,28 @@ def import_table(
         text = Path(path).read_text(encoding="utf-8")
     except FileNotFoundError:
         raise InputError(src, "table file not found") from None
-    dialect = "excel-tab" if "\t" in text.splitlines()[0] else "excel"
-    reader = csv.DictReader(text.splitlines(), dialect=dialect)
+    lines = text.splitlines()
     wanted = ["axis", "degree", "order", "kind", "value"]
+    if not lines:
+        raise InputError(src, f"empty table; header must be: {', '.join(wanted)}")
+    dialect = "excel-tab" if "\t" in lines[0] else "excel"
+    reader = csv.DictReader(lines, dialect=dialect)
     if reader.fieldnames is None or [f.strip().lower() for f in reader.fieldnames] != wanted:
         raise InputError(src, f"header must be: {', '.join(wanted)}")
     scale = 1.0
     if gradient_mT_per_m is not None:
-        scale = 1.0 / (gradient_mT_per_m * reference_radius_mm / 1000.0)
+        field_mT = gradient_mT_per_m * reference_radius_mm / 1000.0
+        if not (math.isfinite(field_mT) and field_mT > 0):
+            raise InputError(src, "field units need a positive gradient_mT_per_m and reference_radius_mm")
+        scale = 1.0 / field_mT
     axes: dict = {a: {"normalisation": normalisation, "condon_shortley": condon_shortley,
                       "reference_radius_mm": reference_radius_mm, "valid_radius_mm": valid_radius_mm,
                       "cos": [], "sin": []} for a in AXES}
-    for line_no, row in enumerate(reader, start=2):
+    for row in reader:
+        # line_num counts physical lines read, so blank lines (skipped) keep it right.
+        line_no = reader.line_num
+        if None in row:
+            raise InputError(src, f"line {line_no}: more columns than the header")
         row = {k.strip().lower(): (v or "").strip() for k, v in row.items()}
         try:
             axis, kind_ = row["axis"].lower(), row["kind"].lower()
