@@ -11,8 +11,9 @@ Conventions (see ``CONVENTIONS.md`` of the project and ``docs/conventions.md``):
   coincides with the DICOM patient LPS frame for a head-first-supine patient
   (common practice, from memory);
 * ``r_device = R(position) @ p_lps + offset_device``, with the table position
-  (BIDS ``TablePosition``) giving ``offset_device = (tp1, -tp2, tp3)`` (from
-  memory; derived from the HFS convention, overridable by the caller).
+  (BIDS ``TablePosition``) giving ``offset_device = (-tp1, -tp2, tp3)``
+  (derived from the BIDS definition and the HFS convention; overridable by
+  the caller).
 """
 
 from __future__ import annotations
@@ -81,14 +82,23 @@ def offset_from_table_position(table_position_mm) -> np.ndarray:
     Returns
     -------
     (3,) ndarray, mm
-        ``(tp1, -tp2, tp3)``: device x points to the observer's left, device y
-        down (posterior of a supine patient), device z into the bore (from
-        memory, derived from the HFS convention).
+        ``(-tp1, -tp2, tp3)``: device x points to the observer's right (the
+        left of a head-first-supine patient seen from the feet), device y
+        down (posterior of a supine patient), device z into the bore.
+
+    Notes
+    -----
+    The patient moves with the table, so the device coordinates of a point
+    fixed to the patient shift by the table's motion. With the device frame
+    equal to the patient LPS frame of a head-first-supine patient (from
+    memory), the observer's left is device -x and up is device -y; the BIDS
+    text (observer in front of the scanner, table moving left, up, into the
+    bore increases values 1, 2, 3) then gives the signs above.
     """
     tp = np.asarray(table_position_mm, dtype=float).reshape(-1)
     if tp.shape != (3,) or not np.all(np.isfinite(tp)):
         raise ValueError(f"TablePosition must be three finite numbers in mm, got {table_position_mm!r}")
-    return np.array([tp[0], -tp[1], tp[2]])
+    return np.array([-tp[0], -tp[1], tp[2]])
 
 
 class DeviceFrame:
