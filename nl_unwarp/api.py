@@ -16,6 +16,7 @@ import numpy as np
 
 from . import __version__
 from .coil import CoilModel
+from .compose import grid_with_margin
 from .errors import InputError
 from .frames import DeviceFrame, offset_from_table_position
 from .io.atomic import OutputSet
@@ -26,6 +27,7 @@ from .resample import correct_image
 from .warp import WarpField, compute_warp
 
 __all__ = [
+    "FIELD_MARGIN_MM",
     "FrameSpec",
     "WarpOutputs",
     "correct_file",
@@ -36,6 +38,12 @@ __all__ = [
 ]
 
 log = logging.getLogger("nl_unwarp")
+
+#: Margin (mm) by which a field written for composition extends beyond the raw
+#: field of view on every side: ITK applies identity outside a field's grid
+#: without a warning (CONVENTIONS.md 4), and registration moves points there.
+#: Larger than the displacement of a gradient system inside its valid radius.
+FIELD_MARGIN_MM = 20.0
 
 
 @dataclass
@@ -83,13 +91,19 @@ def make_frame(spec: FrameSpec) -> tuple[DeviceFrame, str]:
 
 @dataclass
 class WarpOutputs:
-    """Paths of the warp products (each optional)."""
+    """Paths of the warp products (each optional).
+
+    ``field_margin_mm`` grows the grid of the field file (only) by that margin
+    on every side, so that it covers the raw field of view for composition
+    (see :data:`FIELD_MARGIN_MM`); 0 writes it on the raw grid.
+    """
 
     field: str | Path | None = None
     jacobian: str | Path | None = None
     magnitude: str | Path | None = None
     mask: str | Path | None = None
     summary: str | Path | None = None
+    field_margin_mm: float = 0.0
 
 
 def displacement_table(coil: CoilModel, radii_mm=(50.0, 100.0, 150.0, 200.0),
@@ -153,9 +167,20 @@ def _warn_outside(warp: WarpField, image_path: str) -> None:
                     image_path, 100 * warp.outside_fraction)
 
 
-def _write_warp(outputs: OutputSet, warp: WarpField, paths: WarpOutputs, summary: dict) -> None:
+def _field_to_write(warp: WarpField, paths: WarpOutputs, coil: CoilModel,
+                    frame: DeviceFrame) -> WarpField:
+    """The warp on the grid of the field file: the raw grid grown by the margin."""
+    if not paths.field or paths.field_margin_mm <= 0:
+        return warp
+    shape, affine = grid_with_margin(warp.shape, warp.affine, paths.field_margin_mm)
+    return compute_warp(coil, shape, affine, frame, mode=warp.mode, slice_axis=warp.slice_axis)
+
+
+def _write_warp(outputs: OutputSet, warp: WarpField, paths: WarpOutputs, summary: dict,
+                field: WarpField | None = None) -> None:
     if paths.field:
-        write_itk_field(outputs, paths.field, warp.disp_ras_mm, warp.affine)
+        field = warp if field is None else field
+        write_itk_field(outputs, paths.field, field.disp_ras_mm, field.affine)
     if paths.jacobian:
         write_image(outputs, paths.jacobian, np.ascontiguousarray(warp.jacobian), warp.affine)
     if paths.magnitude:
@@ -192,8 +217,9 @@ def warp_file(reference: str | Path, coil: CoilModel | str | Path, outputs: Warp
     model, coil_path = _load_coil_any(coil)
     warp, dev_frame, origin = _warp_for(image, model, frame or FrameSpec(), mode, slice_axis)
     summary = warp_summary(warp, model, coil_path, dev_frame, origin)
+    field = _field_to_write(warp, outputs, model, dev_frame)
     with OutputSet() as out:
-        _write_warp(out, warp, outputs, summary)
+        _write_warp(out, warp, outputs, summary, field)
     return summary
 
 
@@ -236,5 +262,6 @@ def correct_file(
     with OutputSet() as out:
         write_image(out, corrected, result, image.affine, header=image.header)
         if warp_outputs is not None:
-            _write_warp(out, warp, warp_outputs, summary)
+            _write_warp(out, warp, warp_outputs, summary,
+                        _field_to_write(warp, warp_outputs, model, dev_frame))
     return summary
