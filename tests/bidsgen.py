@@ -71,6 +71,8 @@ def configure_nipype(tmp: Path) -> None:
 
     config.set("execution", "crashdump_dir", str(tmp / "crash"))
     config.set("execution", "crashfile_format", "txt")
+    # Keep outputs no downstream node consumes: the tests inspect them.
+    config.set("execution", "remove_unnecessary_outputs", "false")
     config.set("logging", "workflow_level", "WARNING")
     config.set("logging", "interface_level", "WARNING")
     logging.update_logging(config)
