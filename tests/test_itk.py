@@ -49,9 +49,11 @@ MIN_EFFECT = 1.0
 SHAPE = (40, 36, 30)
 ZOOMS_MM = (3.0, 2.5, 4.0)
 #: BIDS TablePosition of an off-centre table (mm-scale displacements), and the
-#: device offset it means, t = (tp1, -tp2, tp3) (CONVENTIONS.md section 1, from memory).
+#: device offset it means, t = (-tp1, -tp2, tp3): the BIDS TablePosition text (observer's
+#: left is the HFS patient's right, device -x); CONVENTIONS.md section 1 has +tp1, which
+#: tests/test_frames.py shows to be wrong.
 TABLE_POSITION_MM = (20.0, 15.0, 60.0)
-OFFSET_MM = (20.0, -15.0, 60.0)
+OFFSET_MM = (-20.0, -15.0, 60.0)
 
 
 def _affine():
