@@ -123,7 +123,32 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("bids_dir", help="BIDS dataset")
     _add_bids_selection(p)
     p.add_argument("--json", action="store_true", help="print JSON")
+
+    _add_compose_parser(sub)
     return parser
+
+
+#: The order convention of ``compose`` (nl_unwarp.compose; CONVENTIONS.md section 4).
+COMPOSE_ORDER = ("in application order: the first is applied first to a point of the reference grid, "
+                 "the last lands in the raw image (antspyx transformlist / nitransforms order; the "
+                 "reverse of ITK CompositeTransform), e.g. warp, affine, correction")
+
+
+def _add_compose_parser(sub) -> None:
+    p = sub.add_parser(
+        "compose", help="fold transforms (affines, fields) into one field: resample the raw image once",
+        description="Fold a chain of ITK affines (.txt/.tfm/.mat), ITK/ANTs displacement fields "
+                    "(.nii[.gz]), ITK composite (.h5) or X5 chains into one ITK displacement field "
+                    "on a reference grid. ORDER: list the transforms " + COMPOSE_ORDER + ".")
+    p.add_argument("transforms", nargs="+", help="transform files, in application order (see above)")
+    p.add_argument("--reference", required=True, help="image whose grid the composed field is written on")
+    p.add_argument("--out-field", help="composed ITK/ANTs displacement field (NIfTI, LPS, intent vector)")
+    p.add_argument("--out-composite",
+                   help="also write the chain un-folded: ITK composite (.h5) or X5 (.x5)")
+    p.add_argument("--raw", help="raw image: only target points landing inside it count as uncovered")
+    p.add_argument("--on-outside", choices=("warn", "raise", "ignore"), default="warn",
+                   help="target points meeting a field outside its grid (where ITK applies identity): "
+                        "warn (default), fail, or ignore")
 
 
 def _frame_spec(args):
@@ -351,8 +376,25 @@ def _cmd_bids_app(args, progress: _Progress) -> None:
     print(CAUTION)
 
 
+def _cmd_compose(args, progress: _Progress) -> None:
+    from .interfaces.compose import compose_transform_files
+
+    progress.step(f"composing {len(args.transforms)} transform file(s) onto the grid of {args.reference}")
+    summary = compose_transform_files(args.transforms, args.reference, out_field=args.out_field,
+                                      out_composite=args.out_composite, raw=args.raw,
+                                      on_outside=args.on_outside)
+    print(f"chain            {' -> '.join(summary['steps'])} (first applied first to a reference point)")
+    if args.out_field:
+        print(f"displacement     max {summary['max_displacement_mm']:.3f} mm; uncovered "
+              f"{100 * summary['uncovered_fraction']:.2f} % of the reference grid")
+    for path in (args.out_field, args.out_composite):
+        if path:
+            print(f"wrote            {path}")
+
+
 COMMANDS = {"warp": _cmd_warp, "correct": _cmd_correct, "describe": _cmd_describe,
             "import": _cmd_import, "demo": _cmd_demo, "plan": _cmd_plan}
+COMMANDS["compose"] = _cmd_compose
 
 
 def main(argv: list[str] | None = None) -> int:
