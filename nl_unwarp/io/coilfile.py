@@ -302,6 +302,8 @@ def import_table(
         text = Path(path).read_text(encoding="utf-8")
     except FileNotFoundError:
         raise InputError(src, "table file not found") from None
+    except UnicodeDecodeError:
+        raise InputError(src, "table is not UTF-8 text") from None
     lines = text.splitlines()
     wanted = ["axis", "degree", "order", "kind", "value"]
     if not lines:
