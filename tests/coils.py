@@ -25,8 +25,9 @@ import magpylib as magpy
 import numpy as np
 from scipy.interpolate import RegularGridInterpolator
 
-#: Coil radius, m: with it the field of a 15 cm region is distorted by millimetres.
-COIL_RADIUS_M = 0.4
+#: Coil radius, m: with it encoded positions 10-15 cm from the isocenter are off
+#: by about a millimetre (a compact, head-size gradient set).
+COIL_RADIUS_M = 0.35
 #: Maxwell pair half-spacing in units of the radius (Maxwell 1873, §715).
 MAXWELL_HALF_SPACING = np.sqrt(3.0) / 2.0
 #: Golay saddle arcs: |z| of the inner and outer arcs (units of the radius) and
@@ -36,6 +37,10 @@ GOLAY_ARC_DEG = 120.0
 #: Straight pieces per arc (5° each at 120°): the polygonal coil is the truth, and
 #: the cost of a field evaluation grows with the number of pieces.
 ARC_SEGMENTS = 24
+#: Radius of the y saddles relative to the x saddles. Nested coils differ in radius
+#: (common practice, no source); it also makes x and y distort differently, so that
+#: a patient position that swaps them is not a symmetry of the coil set.
+Y_RADIUS_FACTOR = 1.08
 #: Step of the five-point derivative that gives the isocenter gradient, m. Its
 #: error is O(step^4 / a^4) ~ 4e-11 relative: negligible.
 GRADIENT_STEP_M = 1e-3
@@ -120,10 +125,11 @@ class GradientCoil:
         return 1e3 * bz_tesla(self.source, 1e-3 * np.asarray(points_device_mm, float)) / self.gradient_t_per_m
 
 
-def coil_set(radius_m: float = COIL_RADIUS_M) -> dict[str, GradientCoil]:
-    """Golay x and y coils and a Maxwell z pair of the same radius."""
+def coil_set(radius_m: float = COIL_RADIUS_M, *, y_radius_factor: float = Y_RADIUS_FACTOR
+             ) -> dict[str, GradientCoil]:
+    """Golay x and y coils and a Maxwell z pair; the y saddles sit on a larger radius."""
     return {"x": GradientCoil.build(golay_coil("x", radius_m), "x"),
-            "y": GradientCoil.build(golay_coil("y", radius_m), "y"),
+            "y": GradientCoil.build(golay_coil("y", y_radius_factor * radius_m), "y"),
             "z": GradientCoil.build(maxwell_pair(radius_m), "z")}
 
 
