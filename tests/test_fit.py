@@ -129,6 +129,12 @@ def test_underdetermined_fits_are_refused(rng):
     on_axis[:, 2] = np.linspace(-100, 100, 50)
     with pytest.raises(ValueError, match="vanishes at every sample"):
         fit_axis(on_axis, on_axis[:, 2], degree=2, reference_radius_mm=100.0, valid_radius_mm=100.0)
+    # On one circle about the z axis, C_0^0 = 1, C_1^0 = z and C_2^0 = (3 z^2 - r^2) / 2 are
+    # all constant: no sampling there can tell them apart.
+    phi = np.linspace(0, 2 * np.pi, 60, endpoint=False)
+    circle = np.stack([100 * np.cos(phi), 100 * np.sin(phi), np.full_like(phi, 50.0)], -1)
+    with pytest.raises(ValueError, match="separate only"):
+        fit_axis(circle, circle[:, 0], degree=2, reference_radius_mm=100.0, valid_radius_mm=100.0)
     with pytest.raises(ValueError, match="shape|expected"):
         fit_axis(on_axis, on_axis[:10, 2], degree=2, reference_radius_mm=100.0, valid_radius_mm=100.0)
 
