@@ -113,19 +113,35 @@ def _query(participants, sessions, datatypes, suffixes, tasks, runs) -> dict:
     return query
 
 
+def _beside(image_path: str, suffix: str, drop: tuple[str, ...] = ()) -> str | None:
+    """A companion file in the image's own folder (the common case, and fast)."""
+    from .names import split_bids_name
+
+    path = Path(image_path)
+    prefix, _suffix, _ext = split_bids_name(path.name)
+    parts = [p for p in prefix.split("_") if p.split("-")[0] not in drop]
+    candidate = path.with_name("_".join(parts) + suffix)
+    return str(candidate) if candidate.exists() else None
+
+
 def _companions(layout, image, relpath: str) -> dict[str, str]:
+    """bval/bvec of a dwi, events of a bold run: beside the image, else by BIDS inheritance."""
     out = {}
     if image.entities.get("suffix") == "dwi":
         for ext in ("bval", "bvec"):
-            try:
-                src = getattr(layout, f"get_{ext}")(image.path)
-            except Exception:  # pybids raises when there is none
-                src = None
+            src = _beside(image.path, f"_dwi.{ext}")
+            if src is None:
+                try:
+                    src = getattr(layout, f"get_{ext}")(image.path)
+                except Exception:  # pybids raises when there is none
+                    src = None
             if src:
                 out[derivative_name(relpath, "corrected", ext=f".{ext}")] = src
     if image.entities.get("suffix") in ("bold", "cbv", "asl", "m0scan"):
-        events = layout.get_nearest(image.path, suffix="events", extension=".tsv", strict=False,
-                                    ignore_strict_entities=["suffix", "extension", "echo", "part"])
+        events = _beside(image.path, "_events.tsv", drop=("echo", "part"))
+        if events is None:
+            events = layout.get_nearest(image.path, suffix="events", extension=".tsv", strict=False,
+                                        ignore_strict_entities=["suffix", "extension", "echo", "part"])
         if events:
             out[str(Path(events).relative_to(layout.root).as_posix())] = events
     return out
