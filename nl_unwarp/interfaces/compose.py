@@ -20,10 +20,12 @@ from nipype.interfaces.base import (
     InputMultiObject,
     SimpleInterface,
     TraitedSpec,
+    isdefined,
     traits,
 )
 
-__all__ = ["ComposeTransforms", "ResampleOnce", "compose_transform_files", "resample_once_file"]
+__all__ = ["ComposeTransforms", "MakeComposableField", "ResampleOnce", "compose_transform_files",
+           "resample_once_file"]
 
 ORDER_HELP = ("in application order: the first is applied first to a point of the reference grid, the "
               "last lands in the raw image (antspyx transformlist / nitransforms order; the reverse "
@@ -180,4 +182,47 @@ class ResampleOnce(SimpleInterface):
         resample_once_file(self.inputs.in_file, self.inputs.fields, out, order=self.inputs.order,
                            fill=self.inputs.fill)
         self._results["out_file"] = str(out)
+        return runtime
+
+
+class _MakeComposableFieldInputSpec(BaseInterfaceInputSpec):
+    reference = File(exists=True, mandatory=True, desc="raw image whose field of view the field covers")
+    coil_model = File(exists=True, mandatory=True, desc="coil model file (nl_unwarp-coil JSON)")
+    patient_position = traits.Str("HFS", usedefault=True, desc="DICOM PatientPosition")
+    isocenter_offset_mm = traits.List(traits.Float, minlen=3, maxlen=3,
+                                      desc="device coordinates (mm) of the world origin")
+    table_position_mm = traits.List(traits.Float, minlen=3, maxlen=3, desc="BIDS TablePosition (mm)")
+    # Same default as nl_unwarp.api.FIELD_MARGIN_MM (not imported here: heavy).
+    margin_mm = traits.Float(20.0, usedefault=True,
+                             desc="margin (mm) beyond the raw field of view on every side (ITK applies "
+                                  "identity outside a field's grid)")
+
+
+class _MakeComposableFieldOutputSpec(TraitedSpec):
+    out_field = File(exists=True,
+                     desc="correction field (ITK/ANTs NIfTI) on the raw grid grown by the margin")
+    out_jacobian = File(exists=True, desc="Jacobian determinant map on the raw grid")
+
+
+class MakeComposableField(SimpleInterface):
+    """The correction field for composition: it covers the raw field of view with a margin."""
+
+    input_spec = _MakeComposableFieldInputSpec
+    output_spec = _MakeComposableFieldOutputSpec
+
+    def _run_interface(self, runtime):
+        from ..api import FrameSpec, WarpOutputs, warp_file
+
+        def given(name):
+            value = getattr(self.inputs, name)
+            return tuple(value) if isdefined(value) else None
+
+        field = Path(runtime.cwd) / "correction_field.nii.gz"
+        jac = Path(runtime.cwd) / "correction_jacobian.nii.gz"
+        frame = FrameSpec(self.inputs.patient_position, given("table_position_mm"),
+                          given("isocenter_offset_mm"))
+        warp_file(self.inputs.reference, self.inputs.coil_model,
+                  WarpOutputs(field=field, jacobian=jac, field_margin_mm=self.inputs.margin_mm),
+                  frame=frame)
+        self._results.update(out_field=str(field), out_jacobian=str(jac))
         return runtime
