@@ -88,7 +88,7 @@ def test_multiproc_matches_linear(study, tmp_path):
         wf.run(plugin=plugin, plugin_args=args)
         outputs[plugin] = [np.asarray(nib.load(tmp_path / "work" / f"wf_{plugin}" / f"img{i}" / "apply_warp"
                                                / "corrected.nii.gz").dataobj) for i in range(2)]
-    for linear, multi in zip(outputs["Linear"], outputs["MultiProc"]):
+    for linear, multi in zip(outputs["Linear"], outputs["MultiProc"], strict=True):
         np.testing.assert_array_equal(linear, multi)
 
 
@@ -121,10 +121,9 @@ def test_hash_cache_skips_then_reruns_on_new_coil(study, tmp_path):
 
 
 def test_decide_feeds_make_warp(study, tmp_path):
+    from bids import BIDSLayout
     from nipype.interfaces import utility as niu
     from nipype.pipeline import engine as pe
-
-    from bids import BIDSLayout
 
     image = study.root / T2W_2D
     metadata = BIDSLayout(str(study.root)).get_metadata(str(image))

@@ -13,7 +13,8 @@ Built from the package's factories, step by step, so it can be adapted:
 Usage::
 
     NLU_COIL_DIR=/secure/coils python workflows/multisite_bids.py BIDS_DIR OUTPUT_DIR \\
-        --site-config sites.json [--work-dir WORK] [--plugin SLURM --plugin-args '{"sbatch_args": "-p short"}']
+        --site-config sites.json [--work-dir WORK] \\
+        [--plugin SLURM --plugin-args '{"sbatch_args": "-p short"}']
 
 Without BIDS_DIR (``--demo FOLDER``) it generates the invented two-site dataset first.
 For research pipelines only: not for diagnosis.

@@ -83,6 +83,16 @@ def _set_threads(n: int | None) -> None:
             os.environ[var] = str(n)
 
 
+def _worker_config(work_dir: Path) -> None:
+    """nipype settings for worker processes, which read them at import (not from this process)."""
+    folder = work_dir / "nipype_config"
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / "nipype.cfg").write_text(
+        "[logging]\nworkflow_level = WARNING\ninterface_level = WARNING\nutils_level = WARNING\n"
+        "[execution]\nhash_method = content\ncrashfile_format = txt\n", encoding="utf-8")
+    os.environ["NIPYPE_CONFIG_DIR"] = str(folder)
+
+
 def summary_rows(plan: Plan, output_dir: Path) -> list[dict]:
     """Per image: decision, reason, rule, and the maximum displacement if a derivative exists."""
     rows = []
@@ -135,6 +145,7 @@ def run(options: RunOptions, *, plan: Plan | None = None) -> tuple[list[dict], l
     for stale in remove_partial_files(output_dir):
         log.warning("removed %s, left by an interrupted run", stale)
     _set_threads(options.omp_nthreads)
+    _worker_config(work_dir)
     workflow = init_bids_unwarp_wf(plan=plan, output_dir=output_dir, site_config=options.site_config,
                                    coil_override=options.coil_override, jacobian=options.jacobian,
                                    order=options.order,

@@ -149,7 +149,7 @@ class SiteConfig:
         return self.policies.get(site, self.default_policy) if site else self.default_policy
 
     @classmethod
-    def empty(cls) -> "SiteConfig":
+    def empty(cls) -> SiteConfig:
         """No rules, default policy: for a run with a coil model override only."""
         return cls("(no site configuration)", {}, (), {}, Policy(), dict(METADATA_KEYS))
 

@@ -15,7 +15,8 @@ __all__ = ["DecideCorrection", "WriteDerivatives"]
 
 
 class _DecideCorrectionInputSpec(BaseInterfaceInputSpec):
-    in_file = File(exists=True, mandatory=True, desc="image to decide for (its header gives the slice geometry)")
+    in_file = File(exists=True, mandatory=True,
+                   desc="image to decide for (its header gives the slice geometry)")
     metadata = traits.Dict(mandatory=True,
                            desc="the image's sidecar metadata, BIDS inheritance applied "
                                 "(e.g. BIDSLayout.get_metadata)")

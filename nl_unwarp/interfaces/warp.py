@@ -93,7 +93,8 @@ class _ApplyWarpInputSpec(BaseInterfaceInputSpec):
                            desc="multiply by the Jacobian determinant (intensity preservation)")
     jacobian_map = File(exists=True, desc="Jacobian determinant map (from MakeWarp); needed when "
                                           "jacobian is on")
-    order = traits.Enum(3, *[o for o in ORDERS if o != 3], usedefault=True, desc="B-spline interpolation order (3: cubic)")
+    order = traits.Enum(3, *[o for o in ORDERS if o != 3], usedefault=True,
+                        desc="B-spline interpolation order (3: cubic)")
     fill = traits.Float(0.0, usedefault=True, desc="value outside the raw field of view")
 
 
