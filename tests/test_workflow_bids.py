@@ -193,3 +193,13 @@ def test_bids_app_cli_runs(study, tmp_path, capsys):
     corrected = np.asarray(nib.load(tmp_path / "cli_out" / derivative_name(T1W, "corrected")).dataobj)
     assert np.isfinite(corrected).all() and corrected.max() > 0.5
     assert Path(tmp_path / "cli_out" / "decisions.tsv").exists()
+
+
+def test_top_level_pipeline_script_builds(study, tmp_path):
+    import runpy
+
+    script = runpy.run_path(str(Path(__file__).parents[1] / "workflows" / "multisite_bids.py"))
+    plan, workflow = script["build"](study.root, tmp_path / "derivatives", study.site_config,
+                                     tmp_path / "work")
+    assert len(plan.rows) == 3 * IMAGES_PER_SESSION
+    assert sum(n.endswith("_sink") for n in workflow.list_node_names()) == len(plan.rows) - 1
