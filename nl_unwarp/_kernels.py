@@ -91,6 +91,25 @@ def _sample(coef, fx, fy, fz, order, wx, wy, wz):
     return acc
 
 
+@numba.njit(inline="always", cache=True)
+def _pull_point(coef, disp, m, r, jac, use_jac, fill, order, out, i, j, k, wx, wy, wz):
+    """Resample one output voxel (see :func:`pull_resample`)."""
+    rx, ry, rz = coef.shape
+    d0 = disp[i, j, k, 0]
+    d1 = disp[i, j, k, 1]
+    d2 = disp[i, j, k, 2]
+    f0 = m[0, 0] * i + m[0, 1] * j + m[0, 2] * k + m[0, 3] + r[0, 0] * d0 + r[0, 1] * d1 + r[0, 2] * d2
+    f1 = m[1, 0] * i + m[1, 1] * j + m[1, 2] * k + m[1, 3] + r[1, 0] * d0 + r[1, 1] * d1 + r[1, 2] * d2
+    f2 = m[2, 0] * i + m[2, 1] * j + m[2, 2] * k + m[2, 3] + r[2, 0] * d0 + r[2, 1] * d1 + r[2, 2] * d2
+    if not (_inside(f0, rx) and _inside(f1, ry) and _inside(f2, rz)):
+        out[i, j, k] = fill
+        return
+    value = _sample(coef, f0, f1, f2, order, wx, wy, wz)
+    if use_jac:
+        value *= jac[i, j, k]
+    out[i, j, k] = value
+
+
 @numba.njit(parallel=True, cache=True)
 def pull_resample(coef, disp, index_map, ras_to_index, jac, use_jac, fill, order, out):
     """Resample ``coef`` at ``index_map @ [i, j, k, 1] + ras_to_index @ disp[i, j, k]``.
@@ -113,30 +132,33 @@ def pull_resample(coef, disp, index_map, ras_to_index, jac, use_jac, fill, order
         Nearest, trilinear or cubic B-spline.
     out : (X, Y, Z) float32 ndarray
         Written in place.
+
+    Notes
+    -----
+    Voxels are visited in the memory order of ``disp`` (the largest stream):
+    x fastest for a Fortran-ordered field (NIfTI's order, as
+    :func:`nl_unwarp.warp.compute_warp` makes it), z fastest otherwise. Each
+    voxel's arithmetic is the same either way.
     """
     nx, ny, nz = out.shape
-    rx, ry, rz = coef.shape
-    for i in numba.prange(nx):
-        wx = np.empty(4)
-        wy = np.empty(4)
-        wz = np.empty(4)
-        for j in range(ny):
-            for k in range(nz):
-                d0 = disp[i, j, k, 0]
-                d1 = disp[i, j, k, 1]
-                d2 = disp[i, j, k, 2]
-                m = index_map
-                r = ras_to_index
-                f0 = m[0, 0] * i + m[0, 1] * j + m[0, 2] * k + m[0, 3] + r[0, 0] * d0 + r[0, 1] * d1 + r[0, 2] * d2
-                f1 = m[1, 0] * i + m[1, 1] * j + m[1, 2] * k + m[1, 3] + r[1, 0] * d0 + r[1, 1] * d1 + r[1, 2] * d2
-                f2 = m[2, 0] * i + m[2, 1] * j + m[2, 2] * k + m[2, 3] + r[2, 0] * d0 + r[2, 1] * d1 + r[2, 2] * d2
-                if not (_inside(f0, rx) and _inside(f1, ry) and _inside(f2, rz)):
-                    out[i, j, k] = fill
-                    continue
-                value = _sample(coef, f0, f1, f2, order, wx, wy, wz)
-                if use_jac:
-                    value *= jac[i, j, k]
-                out[i, j, k] = value
+    if disp.strides[0] < disp.strides[2]:
+        for k in numba.prange(nz):
+            wx = np.empty(4)
+            wy = np.empty(4)
+            wz = np.empty(4)
+            for j in range(ny):
+                for i in range(nx):
+                    _pull_point(coef, disp, index_map, ras_to_index, jac, use_jac, fill, order, out,
+                                i, j, k, wx, wy, wz)
+    else:
+        for i in numba.prange(nx):
+            wx = np.empty(4)
+            wy = np.empty(4)
+            wz = np.empty(4)
+            for j in range(ny):
+                for k in range(nz):
+                    _pull_point(coef, disp, index_map, ras_to_index, jac, use_jac, fill, order, out,
+                                i, j, k, wx, wy, wz)
 
 
 @numba.njit(parallel=True, cache=True)

@@ -34,31 +34,51 @@ def _threads() -> int:
     return max(1, int(numba.get_num_threads()))
 
 
-def prefilter(volume: np.ndarray, order: int) -> np.ndarray:
+def prefilter(volume: np.ndarray, order: int, *, memory_order: str = "K") -> np.ndarray:
     """B-spline coefficients (float32) of a real 3-D volume, mirror boundary.
 
     The separable recursive filter of each axis runs on slabs in threads
     (scipy.ndimage releases the GIL).
+
+    Parameters
+    ----------
+    volume : (X, Y, Z) ndarray
+        Real image (converted to float32 first).
+    order : int
+        B-spline order; 0 and 1 need no filter (a float32 copy is returned).
+    memory_order : {"K", "C", "F"}
+        Memory order of the result ("K": that of ``volume``). A change of
+        order is made by the first filter pass, not by a separate transposed copy.
+
+    Returns
+    -------
+    (X, Y, Z) float32 ndarray
     """
-    out = np.array(volume, dtype=np.float32, copy=True)
+    volume = np.asarray(volume)
+    src = volume if volume.dtype == np.float32 else volume.astype(np.float32)
     if order <= 1:
-        return out
+        return np.array(src, dtype=np.float32, order=memory_order, copy=True)
+    out = np.empty_like(src, order=memory_order, subok=False)
     threads = _threads()
+    # Slabs along the slowest-varying axis are contiguous blocks (C or Fortran order alike).
+    slow_first = sorted(range(3), key=lambda a: -out.strides[a])
     with ThreadPoolExecutor(threads) as pool:
         for axis in range(3):
             if out.shape[axis] == 1:
                 continue
-            split_axis = 0 if axis != 0 else 1
+            split_axis = next(a for a in slow_first if a != axis)
             chunks = np.array_split(np.arange(out.shape[split_axis]), threads)
 
-            def run(idx, axis=axis, split_axis=split_axis):
+            def run(idx, axis=axis, split_axis=split_axis, src=src):
                 sl = [slice(None)] * 3
                 sl[split_axis] = slice(idx[0], idx[-1] + 1)
-                block = out[tuple(sl)]
-                ndimage.spline_filter1d(block, order=order, axis=axis, mode="mirror",
-                                        output=block)
+                ndimage.spline_filter1d(src[tuple(sl)], order=order, axis=axis, mode="mirror",
+                                        output=out[tuple(sl)])
 
             list(pool.map(run, [c for c in chunks if c.size]))
+            src = out
+    if src is not out:  # no axis longer than 1: nothing to filter
+        out[...] = src
     return out
 
 
@@ -84,6 +104,11 @@ def _resample_scipy(coef, disp, index_map, ras_to_index, jac, fill, order):
     if jac is not None:
         out = out * jac
     return np.where(inside, out, fill).astype(np.float32)
+
+
+def _x_fastest(array: np.ndarray) -> bool:
+    """Whether x varies fastest in memory (Fortran order, as NIfTI stores voxels)."""
+    return array.strides[0] < array.strides[2]
 
 
 def resample_volume(volume: np.ndarray, raw_affine: np.ndarray, disp_ras_mm: np.ndarray,
@@ -114,15 +139,17 @@ def resample_volume(volume: np.ndarray, raw_affine: np.ndarray, disp_ras_mm: np.
     """
     if order not in ORDERS:
         raise ValueError(f"interpolation order must be one of {ORDERS}, got {order}")
-    coef = prefilter(volume, order)
-    index_map, ras_to_index = _index_maps(np.asarray(raw_affine, float), np.asarray(out_affine, float))
     # Views (strided) are fine for the kernel: avoid copying a full-grid field.
     disp = np.asarray(disp_ras_mm, dtype=np.float32)
+    # Coefficients in the field's memory order keep the kernel's reads local.
+    coef = prefilter(volume, order, memory_order="F" if _x_fastest(disp) else "C")
+    index_map, ras_to_index = _index_maps(np.asarray(raw_affine, float), np.asarray(out_affine, float))
     if order not in _FAST_ORDERS:
         return _resample_scipy(coef, disp, index_map, ras_to_index, jacobian, fill, order)
     from ._kernels import pull_resample
 
-    out = np.empty(disp.shape[:3], dtype=np.float32)
+    # Match the field's memory order: the kernel then streams through both.
+    out = np.empty(disp.shape[:3], dtype=np.float32, order="F" if _x_fastest(disp) else "C")
     jac = (np.asarray(jacobian, dtype=np.float32) if jacobian is not None
            else np.ones((1, 1, 1), dtype=np.float32))
     pull_resample(coef, disp, index_map, ras_to_index, jac, jacobian is not None,
@@ -179,7 +206,8 @@ def correct_image(
     volumes = data[..., None] if data.ndim == 3 else data
     is_complex = np.iscomplexobj(data)
     out_dtype = np.complex64 if is_complex else np.float32
-    out = np.empty(warp.shape + (volumes.shape[3],), dtype=out_dtype)
+    # Fortran order (NIfTI's): each volume is contiguous and writes without a transposed copy.
+    out = np.empty(warp.shape + (volumes.shape[3],), dtype=out_dtype, order="F")
     for t in range(volumes.shape[3]):
         vol = volumes[..., t]
         parts = (vol.real, vol.imag) if is_complex else (vol,)

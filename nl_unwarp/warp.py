@@ -143,16 +143,14 @@ def _lagrange_weights(t: np.ndarray) -> np.ndarray:
     ])
 
 
-def _upsample_axis(lattice: np.ndarray, axis: int, n: int, step: int,
-                   dtype=np.float64) -> np.ndarray:
-    """Upsample spatial ``axis`` of (X, Y, Z, C) lattice data (nodes at (j - 1) * step) onto 0..n-1."""
+def _upsample_axis(src: np.ndarray, n: int, step: int, dtype=np.float64) -> np.ndarray:
+    """Upsample axis 2 of C-ordered (A, B, M, C) lattice data (nodes at (j - 1) * step) onto 0..n-1."""
     from ._kernels import upsample_last
 
-    src = np.ascontiguousarray(np.swapaxes(lattice, axis, 2), dtype=np.float64)
     weights = _lagrange_weights(np.arange(step) / step).T.copy()
     out = np.empty(src.shape[:2] + (n, src.shape[3]), dtype=dtype)
     upsample_last(src, step, weights, out)
-    return np.swapaxes(out, axis, 2)
+    return out
 
 
 def lattice(shape, zooms, lattice_mm):
@@ -180,12 +178,23 @@ def _check_voxels(shape, count: int, seed: int) -> np.ndarray:
 
 
 def upsample_lattice(values: np.ndarray, shape, steps) -> np.ndarray:
-    """Upsample (Mx, My, Mz, C) lattice values onto the full grid, float32 (X, Y, Z, C)."""
-    for axis in range(3):
-        # The last pass is over the full grid: write float32 directly.
-        values = _upsample_axis(values, axis, shape[axis], steps[axis],
-                                dtype=np.float32 if axis == 2 else np.float64)
-    return values
+    """Upsample (Mx, My, Mz, C) lattice values onto the full grid, float32 (X, Y, Z, C).
+
+    The result is Fortran-ordered (x fastest, channel slowest), NIfTI's
+    on-disk order: a channel is then one contiguous volume, which the
+    pull-back kernel and the file writers stream through without a transposed
+    copy. Axes are upsampled x, then y, then z.
+    """
+    nx, ny, nz = (int(n) for n in shape)
+    # Channel-first and C-ordered, (C, Mz, My, Mx): each pass upsamples axis 2
+    # of an (A, B, M, rest) view without copying.
+    cf = np.ascontiguousarray(np.transpose(values, (3, 2, 1, 0)), dtype=np.float64)
+    nc, mz, my, mx = cf.shape
+    cf = _upsample_axis(cf.reshape(nc * mz, my, mx, 1), nx, steps[0]).reshape(nc, mz, my, nx)
+    cf = _upsample_axis(cf, ny, steps[1])
+    # The last pass is over the full grid: write float32 directly.
+    cf = _upsample_axis(cf.reshape(nc, 1, mz, ny * nx), nz, steps[2], dtype=np.float32)
+    return cf.reshape(nc, nz, ny, nx).transpose(3, 2, 1, 0)
 
 
 def _upsampled(coil, frame, affine, shape, projector, steps, nodes):
