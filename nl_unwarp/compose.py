@@ -221,56 +221,68 @@ def _point(m, i, j, k):
 
 
 @numba.njit(parallel=True, cache=True)
-def _affine_pass(target_map, a, disp):
-    """``disp <- A(p + disp) - p`` for every target voxel ``p``."""
-    nx, ny, nz = disp.shape[0], disp.shape[1], disp.shape[2]
-    for i in numba.prange(nx):
-        for j in range(ny):
-            for k in range(nz):
-                px, py, pz = _point(target_map, i, j, k)
-                x, y, z = px + disp[i, j, k, 0], py + disp[i, j, k, 1], pz + disp[i, j, k, 2]
-                qx, qy, qz = _point(a, x, y, z)
-                disp[i, j, k, 0] = qx - px
-                disp[i, j, k, 1] = qy - py
-                disp[i, j, k, 2] = qz - pz
+def _chain_pass(target_map, program, affines, fields, jacs, use_jacs, field_maps, disp, factor, missed):
+    """Push every target voxel through the whole chain in one pass.
 
-
-@numba.njit(parallel=True, cache=True)
-def _field_pass(target_map, field, jac, use_jac, field_map, disp, factor, missed):
-    """``disp <- (x + d(x)) - p`` with ``x = p + disp``; factors multiply; misses are flagged.
-
-    ``d`` is trilinear between grid points, as ITK's
-    ``VectorLinearInterpolateImageFunction``: a point is inside when its
-    continuous index lies within [-0.5, n - 0.5] on every axis, and
-    neighbours beyond the edge are clamped. Outside, ``d = 0`` (identity).
+    ``program[s] = (kind, index)``: kind 0 is ``affines[index]`` (3 x 4 pull
+    matrix), kind 1 is ``fields[index]`` with ``field_maps[index]`` (world ->
+    voxel index). ``fields`` and ``jacs`` are tuples of arrays (one compiled
+    variant per chain length). A field's ``d`` is trilinear between grid
+    points, as ITK's ``VectorLinearInterpolateImageFunction``: a point is
+    inside when its continuous index lies within [-0.5, n - 0.5] on every
+    axis, neighbours beyond the edge are clamped; outside, ``d = 0``
+    (identity) and the voxel is flagged in ``missed``.
     """
     nx, ny, nz = disp.shape[0], disp.shape[1], disp.shape[2]
-    fx, fy, fz = field.shape[0], field.shape[1], field.shape[2]
-    m = field_map
     for i in numba.prange(nx):
         for j in range(ny):
             for k in range(nz):
                 px, py, pz = _point(target_map, i, j, k)
-                x, y, z = px + disp[i, j, k, 0], py + disp[i, j, k, 1], pz + disp[i, j, k, 2]
-                gi, gj, gk = _point(m, x, y, z)
-                if not (-0.5 <= gi <= fx - 0.5 and -0.5 <= gj <= fy - 0.5 and -0.5 <= gk <= fz - 0.5):
-                    missed[i, j, k] = True
-                    continue
-                bi, bj, bk = int(np.floor(gi)), int(np.floor(gj)), int(np.floor(gk))
-                ti, tj, tk = gi - bi, gj - bj, gk - bk
-                i0, i1 = _clamp(bi, fx), _clamp(bi + 1, fx)
-                j0, j1 = _clamp(bj, fy), _clamp(bj + 1, fy)
-                k0, k1 = _clamp(bk, fz), _clamp(bk + 1, fz)
-                for c in range(3):
-                    disp[i, j, k, c] += _blend(
-                        field[i0, j0, k0, c], field[i0, j0, k1, c], field[i0, j1, k0, c],
-                        field[i0, j1, k1, c], field[i1, j0, k0, c], field[i1, j0, k1, c],
-                        field[i1, j1, k0, c], field[i1, j1, k1, c], ti, tj, tk)
-                if use_jac:
-                    factor[i, j, k] *= _blend(
-                        jac[i0, j0, k0], jac[i0, j0, k1], jac[i0, j1, k0], jac[i0, j1, k1],
-                        jac[i1, j0, k0], jac[i1, j0, k1], jac[i1, j1, k0], jac[i1, j1, k1],
-                        ti, tj, tk)
+                x, y, z = px, py, pz
+                f = 1.0
+                miss = False
+                for s in range(program.shape[0]):
+                    idx = program[s, 1]
+                    if program[s, 0] == 0:
+                        x, y, z = _point(affines[idx], x, y, z)
+                        continue
+                    field = fields[idx]
+                    fx, fy, fz = field.shape[0], field.shape[1], field.shape[2]
+                    gi, gj, gk = _point(field_maps[idx], x, y, z)
+                    if not (-0.5 <= gi <= fx - 0.5 and -0.5 <= gj <= fy - 0.5 and -0.5 <= gk <= fz - 0.5):
+                        miss = True
+                        continue
+                    # Indices >= -0.5 here: truncating index + 1 is the floor.
+                    bi, bj, bk = int(gi + 1.0) - 1, int(gj + 1.0) - 1, int(gk + 1.0) - 1
+                    ti, tj, tk = gi - bi, gj - bj, gk - bk
+                    if 0 <= bi < fx - 1 and 0 <= bj < fy - 1 and 0 <= bk < fz - 1:
+                        i0, i1, j0, j1, k0, k1 = bi, bi + 1, bj, bj + 1, bk, bk + 1
+                    else:
+                        i0, i1 = _clamp(bi, fx), _clamp(bi + 1, fx)
+                        j0, j1 = _clamp(bj, fy), _clamp(bj + 1, fy)
+                        k0, k1 = _clamp(bk, fz), _clamp(bk + 1, fz)
+                    dx = _blend(field[i0, j0, k0, 0], field[i0, j0, k1, 0], field[i0, j1, k0, 0],
+                                field[i0, j1, k1, 0], field[i1, j0, k0, 0], field[i1, j0, k1, 0],
+                                field[i1, j1, k0, 0], field[i1, j1, k1, 0], ti, tj, tk)
+                    dy = _blend(field[i0, j0, k0, 1], field[i0, j0, k1, 1], field[i0, j1, k0, 1],
+                                field[i0, j1, k1, 1], field[i1, j0, k0, 1], field[i1, j0, k1, 1],
+                                field[i1, j1, k0, 1], field[i1, j1, k1, 1], ti, tj, tk)
+                    dz = _blend(field[i0, j0, k0, 2], field[i0, j0, k1, 2], field[i0, j1, k0, 2],
+                                field[i0, j1, k1, 2], field[i1, j0, k0, 2], field[i1, j0, k1, 2],
+                                field[i1, j1, k0, 2], field[i1, j1, k1, 2], ti, tj, tk)
+                    if use_jacs[idx]:
+                        jac = jacs[idx]
+                        f *= _blend(jac[i0, j0, k0], jac[i0, j0, k1], jac[i0, j1, k0], jac[i0, j1, k1],
+                                    jac[i1, j0, k0], jac[i1, j0, k1], jac[i1, j1, k0], jac[i1, j1, k1],
+                                    ti, tj, tk)
+                    x += dx
+                    y += dy
+                    z += dz
+                disp[i, j, k, 0] = x - px
+                disp[i, j, k, 1] = y - py
+                disp[i, j, k, 2] = z - pz
+                factor[i, j, k] = f
+                missed[i, j, k] = miss
 
 
 @numba.njit(parallel=True, cache=True)
@@ -299,6 +311,28 @@ def _as_step(step) -> AffineStep | FieldStep:
 
 
 _NO_JACOBIAN = np.ones((1, 1, 1), np.float32)
+_NO_FIELD = np.zeros((1, 1, 1, 3), np.float32)
+
+
+def _pack(steps: Sequence[AffineStep | FieldStep]):
+    """The chain as kernel arguments: (S, 2) program, stacked affines, tuples of fields."""
+    program, affines, fields, jacs, use_jacs, maps = [], [], [], [], [], []
+    for step in steps:
+        if isinstance(step, AffineStep):
+            program.append((0, len(affines)))
+            affines.append(step.matrix_ras[:3])
+            continue
+        program.append((1, len(fields)))
+        fields.append(step.disp_ras_mm)
+        jacs.append(_NO_JACOBIAN if step.jacobian is None else step.jacobian)
+        use_jacs.append(step.jacobian is not None)
+        maps.append(np.linalg.inv(step.affine)[:3])
+    if not fields:  # the kernel needs typed (unused) entries
+        fields, jacs, use_jacs, maps = [_NO_FIELD], [_NO_JACOBIAN], [False], [np.zeros((3, 4))]
+    return (np.asarray(program, np.int64).reshape(-1, 2),
+            np.ascontiguousarray(affines if affines else np.zeros((1, 3, 4)), dtype=float),
+            tuple(fields), tuple(jacs), np.asarray(use_jacs, np.bool_),
+            np.ascontiguousarray(maps, dtype=float))
 
 
 def compose_chain(
@@ -356,20 +390,12 @@ def compose_chain(
     shape = tuple(int(n) for n in target_shape)
     target_affine = np.asarray(target_affine, dtype=float)
     target_map = np.ascontiguousarray(target_affine[:3])
-    disp = np.zeros(shape + (3,), np.float32)
-    factor = np.ones(shape, np.float32)
-    missed = np.zeros(shape, np.bool_)
-    has_factor = False
-    # One pass per step over the target grid: the displacement so far is the
-    # state, so no (X, Y, Z, 3) float64 point array is ever held.
-    for step in steps:
-        if isinstance(step, AffineStep):
-            _affine_pass(target_map, np.ascontiguousarray(step.matrix_ras[:3]), disp)
-            continue
-        use_jac = step.jacobian is not None
-        has_factor |= use_jac
-        _field_pass(target_map, step.disp_ras_mm, step.jacobian if use_jac else _NO_JACOBIAN,
-                    use_jac, np.ascontiguousarray(np.linalg.inv(step.affine)[:3]), disp, factor, missed)
+    disp = np.empty(shape + (3,), np.float32)
+    factor = np.empty(shape, np.float32)
+    missed = np.empty(shape, np.bool_)
+    program, affines, fields, jacs, use_jacs, maps = _pack(steps)
+    _chain_pass(target_map, program, affines, fields, jacs, use_jacs, maps, disp, factor, missed)
+    has_factor = bool(use_jacs.any())
     if raw_shape is not None and raw_affine is not None and missed.any():
         _keep_inside_raw(target_map, np.ascontiguousarray(np.linalg.inv(np.asarray(raw_affine, float))[:3]),
                          np.asarray(raw_shape, dtype=np.int64), disp, missed)

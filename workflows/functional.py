@@ -77,8 +77,9 @@ def estimate_motion(series: str) -> list:
             with OutputSet() as sink:
                 write_itk_affine(sink, path, np.eye(4))
         else:
+            # Dense metric sampling: reproducible (random sampling is not, across threads).
             result = ants.registration(fixed=reference, moving=volume(t), type_of_transform="Rigid",
-                                       random_seed=1)
+                                       aff_random_sampling_rate=1.0, random_seed=1)
             ants.write_transform(ants.read_transform(result["fwdtransforms"][0]), path)
         out.append(path)
     return out

@@ -126,8 +126,10 @@ def register(fixed: str, moving: str, transform_type: str = "Affine") -> list:
 
     import ants
 
+    # Dense metric sampling: reproducible (random sampling is not, across threads).
     result = ants.registration(fixed=ants.image_read(fixed), moving=ants.image_read(moving),
-                               type_of_transform=transform_type, random_seed=1)
+                               type_of_transform=transform_type, aff_random_sampling_rate=1.0,
+                               random_seed=1)
     out = []
     for k, path in enumerate(result["fwdtransforms"]):
         suffix = ".nii.gz" if path.endswith(".nii.gz") else os.path.splitext(path)[1]
