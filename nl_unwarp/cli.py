@@ -408,7 +408,14 @@ def main(argv: list[str] | None = None) -> int:
     try:
         (_cmd_bids_app if bids_app else COMMANDS[args.command])(args, progress)
     except InputError as exc:
-        print(f"{PROG}: error: {exc}", file=sys.stderr)
+        # One line, whatever a wrapped library put in the message (nibabel's have newlines).
+        print(f"{PROG}: error: {' '.join(str(exc).split())}", file=sys.stderr)
+        return 1
+    except OSError as exc:
+        # A full disk, a folder that is a file, no permission: the system names the path.
+        # Outputs are complete-or-nothing (OutputSet), so nothing half-written is left.
+        where = exc.filename if exc.filename is not None else "output"
+        print(f"{PROG}: error: {where}: {exc.strerror or exc}", file=sys.stderr)
         return 1
     except MemoryError:
         print(f"{PROG}: error: out of memory", file=sys.stderr)
