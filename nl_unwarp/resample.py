@@ -59,26 +59,30 @@ def prefilter(volume: np.ndarray, order: int, *, memory_order: str = "K") -> np.
     if order <= 1:
         return np.array(src, dtype=np.float32, order=memory_order, copy=True)
     out = np.empty_like(src, order=memory_order, subok=False)
+    # scipy walks the lines of an axis in C order of the other axes: a Fortran-ordered
+    # volume is filtered through its transpose (C-ordered, the same lines), x still first.
+    flip = out.flags.f_contiguous and not out.flags.c_contiguous
+    dst, src = (out.T, src.T) if flip else (out, src)
     threads = _threads()
-    # Slabs along the slowest-varying axis are contiguous blocks (C or Fortran order alike).
-    slow_first = sorted(range(3), key=lambda a: -out.strides[a])
+    # Slabs along the slowest-varying axis are contiguous blocks.
+    slow_first = sorted(range(3), key=lambda a: -dst.strides[a])
     with ThreadPoolExecutor(threads) as pool:
-        for axis in range(3):
-            if out.shape[axis] == 1:
+        for axis in (2, 1, 0) if flip else (0, 1, 2):
+            if dst.shape[axis] == 1:
                 continue
             split_axis = next(a for a in slow_first if a != axis)
-            chunks = np.array_split(np.arange(out.shape[split_axis]), threads)
+            chunks = np.array_split(np.arange(dst.shape[split_axis]), threads)
 
             def run(idx, axis=axis, split_axis=split_axis, src=src):
                 sl = [slice(None)] * 3
                 sl[split_axis] = slice(idx[0], idx[-1] + 1)
                 ndimage.spline_filter1d(src[tuple(sl)], order=order, axis=axis, mode="mirror",
-                                        output=out[tuple(sl)])
+                                        output=dst[tuple(sl)])
 
             list(pool.map(run, [c for c in chunks if c.size]))
-            src = out
-    if src is not out:  # no axis longer than 1: nothing to filter
-        out[...] = src
+            src = dst
+    if src is not dst:  # no axis longer than 1: nothing to filter
+        dst[...] = src
     return out
 
 
