@@ -1,0 +1,194 @@
+"""Write report pages from files: an image and its warp products, a derivatives dataset, a coil model.
+
+Pages are written complete-or-nothing (:class:`~nl_unwarp.io.atomic.OutputSet`).
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Mapping
+from pathlib import Path
+
+import numpy as np
+
+from ..io.atomic import OutputSet
+from .pages import (
+    DatasetEntry,
+    ImageInputs,
+    coil_page_name,
+    render_coil_page,
+    render_dataset_page,
+    render_image_page,
+)
+from .stats import fov_centre_ras_mm, image_flags
+
+__all__ = ["REPORTS_DIR", "image_report_name", "write_coil_page", "write_dataset_report",
+           "write_image_report", "write_page"]
+
+#: Folder of the reports inside a derivatives dataset.
+REPORTS_DIR = "reports"
+INDEX_NAME = "index.html"
+
+
+def write_page(path: str | Path, text: str) -> Path:
+    """Write an HTML page atomically."""
+    path = Path(path)
+    with OutputSet() as out:
+        out.reserve(path).write_text(text, encoding="utf-8")
+    return path
+
+
+def image_report_name(source_relpath: str) -> str:
+    """Report file name of an image (``sub-01/anat/sub-01_T1w.nii.gz`` -> ``sub-01_T1w.html``)."""
+    return Path(source_relpath).name.split(".")[0] + ".html"
+
+
+def _field_on_grid(field_file: str | Path, shape, affine: np.ndarray) -> np.ndarray:
+    """The ITK field's RAS displacement on an image grid (a field with a margin is sampled linearly)."""
+    from ..io.itk import read_itk_field
+
+    disp, field_affine = read_itk_field(field_file)
+    if disp.shape[:3] == tuple(shape[:3]) and np.allclose(field_affine, affine, atol=1e-4):
+        return disp
+    from scipy.ndimage import map_coordinates
+
+    from ..warp import index_to_ras
+
+    ijk = np.stack(np.meshgrid(*[np.arange(n) for n in shape[:3]], indexing="ij"), -1).astype(float)
+    inv = np.linalg.inv(field_affine)
+    coords = index_to_ras(inv, index_to_ras(affine, ijk))
+    return np.stack([map_coordinates(disp[..., c], np.moveaxis(coords, -1, 0), order=1, mode="nearest")
+                     for c in range(3)], -1).astype(np.float32)
+
+
+def _load(path) -> tuple[np.ndarray, np.ndarray]:
+    from ..io.nifti import load_image
+
+    img = load_image(path)
+    return img.data, img.affine
+
+
+def write_image_report(out_html: str | Path, *, raw_file: str | Path, summary: Mapping | str | Path,
+                       field_file: str | Path, jacobian_file: str | Path | None = None,
+                       corrected_file: str | Path | None = None, decision: Mapping | None = None,
+                       metadata: Mapping | None = None, title: str | None = None,
+                       coil_page_href: str | None = None) -> Path:
+    """Write the per-image page from an image and its warp products.
+
+    Parameters
+    ----------
+    out_html : path
+    raw_file : path
+        The image as the scanner reconstructed it.
+    summary : mapping or path
+        Warp summary (or its JSON file).
+    field_file : path
+        ITK displacement field (its grid may extend beyond the image's).
+    jacobian_file : path, optional
+        Jacobian map on the image grid; without it, the page shows the
+        determinant of the field's finite-difference Jacobian (less exact).
+    corrected_file : path, optional
+        The corrected image, for the before/after comparison.
+    decision, metadata : mapping, optional
+        Decision record and the sidecar it read.
+    title : str, optional
+        Default: the raw file's name.
+    coil_page_href : str, optional
+        Link to the coil model page (default: ``coil-<sha>.html`` beside the page).
+    """
+    if not isinstance(summary, Mapping):
+        summary = json.loads(Path(summary).read_text(encoding="utf-8"))
+    raw, affine = _load(raw_file)
+    disp = _field_on_grid(field_file, raw.shape, affine)
+    if jacobian_file is not None:
+        jac = np.asarray(_load(jacobian_file)[0], dtype=np.float32)
+    else:
+        jac = _finite_difference_jacobian(disp, affine)
+    corrected = _load(corrected_file)[0] if corrected_file is not None else None
+    href = coil_page_href or coil_page_name(summary["coil_model"].get("sha256"))
+    inputs = ImageInputs(title or Path(raw_file).name, raw, affine, dict(summary), disp, jac, corrected,
+                         dict(decision) if decision else None, dict(metadata) if metadata else None, href)
+    return write_page(out_html, render_image_page(inputs))
+
+
+def _finite_difference_jacobian(disp: np.ndarray, affine: np.ndarray) -> np.ndarray:
+    """det(I + dd/dp) by central differences on the grid (``numpy.gradient``)."""
+    a3 = np.asarray(affine, float)[:3, :3]
+    inv = np.linalg.inv(a3)
+    grads = np.stack([np.stack(np.gradient(disp[..., c], axis=(0, 1, 2)) if min(disp.shape[:3]) > 1
+                               else [np.zeros(disp.shape[:3])] * 3, -1) for c in range(3)], -2)
+    # d d_c / d p = (d d_c / d ijk) inv(A)
+    jac = np.eye(3) + grads @ inv
+    return np.linalg.det(jac).astype(np.float32)
+
+
+def write_coil_page(coil_file: str | Path, out_html: str | Path) -> Path:
+    """Write a coil model's page."""
+    from ..io.coilfile import coil_sha256, load_coil
+
+    return write_page(out_html, render_coil_page(load_coil(coil_file), coil_sha256(coil_file)))
+
+
+def _provenance(output_dir: Path, relpath: str) -> dict | None:
+    from ..bids.names import derivative_name
+
+    for kind in ("field", "corrected"):
+        sidecar = output_dir / derivative_name(relpath, kind, ext=".json")
+        if sidecar.exists():
+            return json.loads(sidecar.read_text(encoding="utf-8")).get("NLUnwarpProvenance")
+    return None
+
+
+def _fov_centre(path: str | Path):
+    import nibabel as nib
+
+    img = nib.load(str(path))
+    return fov_centre_ras_mm(img.shape[:3], img.affine)
+
+
+def write_dataset_report(output_dir: str | Path, plan) -> Path:
+    """Write ``reports/index.html`` of a derivatives dataset and one page per coil model used.
+
+    Parameters
+    ----------
+    output_dir : path
+        Root of the derivatives dataset (its per-image reports, if any, are in
+        ``reports/``).
+    plan : nl_unwarp.bids.plan.Plan
+        The plan the run was made from.
+
+    Returns
+    -------
+    Path
+        The index page.
+    """
+    from ..io.coilfile import coil_sha256, load_coil
+
+    output_dir = Path(output_dir)
+    reports = output_dir / REPORTS_DIR
+    entries, coils = [], {}
+    for row in plan.rows:
+        decision = row.decision.as_record() if row.decision else None
+        prov = _provenance(output_dir, row.relpath)
+        summary = None
+        if prov is not None:
+            summary = {**prov["warp"], "coil_model": prov["coil_model"]}
+        coil_href = None
+        if row.decision is not None and Path(row.decision.coil_path).is_file():
+            sha = coil_sha256(row.decision.coil_path)
+            coil_href = coil_page_name(sha)
+            coils.setdefault(coil_href, row.decision.coil_path)
+        page_name = image_report_name(row.relpath)
+        flags = [] if decision is None else image_flags(summary=summary, decision=decision,
+                                                        fov_centre_ras_mm=_fov_centre(row.path))
+        entries.append(DatasetEntry(row.relpath, decision, summary, flags,
+                                    page_name if (reports / page_name).exists() else None, coil_href,
+                                    row.problem))
+    with OutputSet() as out:
+        for href, path in coils.items():
+            out.reserve(reports / href).write_text(render_coil_page(load_coil(path), coil_sha256(path)),
+                                                   encoding="utf-8")
+        index = reports / INDEX_NAME
+        out.reserve(index).write_text(render_dataset_page(entries, title=Path(plan.bids_dir).name),
+                                      encoding="utf-8")
+    return index
