@@ -389,6 +389,8 @@ def report(info: dict, shape, repeats: int) -> dict:
     ours_peak = max(peak["ours-nii"], peak["ours-nii.gz"])
     first = runs["ours-nii"][0]
     numba_t = info["numba"]
+    if tuple(shape) != SHAPE_FULL:
+        print("\nsmoke run: the targets are set for the full grid, where fixed costs matter less")
     print(f"\nratio ours (.nii) / fastest SimpleITK = {ratio:.2f} (target <= {TARGET_RATIO}): "
           f"{'met' if ratio <= TARGET_RATIO else 'NOT met'}")
     best = {name: min(r["seconds"] for r in runs[name]) for name in PATHS}
