@@ -91,6 +91,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--fill", type=float, default=0.0, help="value outside the field of view")
     p.add_argument("--keep-dtype", action="store_true",
                    help="write the input data type (integers rounded and clipped)")
+    p.add_argument("--report", metavar="HTML",
+                   help="write the HTML quality report (and the coil model page beside it)")
     _add_frame_options(p)
     _add_warp_outputs(p, required_field=False)
 
@@ -125,6 +127,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print JSON")
 
     _add_compose_parser(sub)
+    _add_report_parser(sub)
     return parser
 
 
@@ -195,12 +198,21 @@ def _cmd_correct(args, progress: _Progress) -> None:
     from .api import correct_file
 
     progress.step(f"correcting {args.source}")
-    summary = correct_file(args.source, args.coil, args.corrected, warp_outputs=_warp_outputs(args),
-                           frame=_frame_spec(args), mode=args.mode, slice_axis=_slice_axis(args),
-                           order=args.order, jacobian=not args.no_jacobian, fill=args.fill,
-                           keep_dtype=args.keep_dtype, progress=progress.volumes)
-    _print_warp_summary(summary)
-    print(f"wrote            {args.corrected}")
+    with _report_scratch(args) as outputs:
+        summary = correct_file(args.source, args.coil, args.corrected, warp_outputs=outputs,
+                               frame=_frame_spec(args), mode=args.mode, slice_axis=_slice_axis(args),
+                               order=args.order, jacobian=not args.no_jacobian, fill=args.fill,
+                               keep_dtype=args.keep_dtype, progress=progress.volumes)
+        _print_warp_summary(summary)
+        print(f"wrote            {args.corrected}")
+        if args.report:
+            from .report.files import write_correction_report
+
+            progress.step("writing the quality report")
+            pages = write_correction_report(args.report, raw_file=args.source, corrected_file=args.corrected,
+                                            summary=summary, field_file=outputs.field,
+                                            jacobian_file=outputs.jacobian, coil_file=args.coil)
+            print(f"report           {pages[0]} (coil model page {pages[1].name})")
 
 
 def _cmd_describe(args, progress: _Progress) -> None:
@@ -395,6 +407,57 @@ def _cmd_compose(args, progress: _Progress) -> None:
 COMMANDS = {"warp": _cmd_warp, "correct": _cmd_correct, "describe": _cmd_describe,
             "import": _cmd_import, "demo": _cmd_demo, "plan": _cmd_plan}
 COMMANDS["compose"] = _cmd_compose
+
+
+def _report_scratch(args):
+    """The warp outputs, with a scratch field and Jacobian map when a report needs them."""
+    import contextlib
+    import tempfile
+
+    outputs = _warp_outputs(args)
+    if not getattr(args, "report", None) or (outputs.field and outputs.jacobian):
+        return contextlib.nullcontext(outputs)
+
+    @contextlib.contextmanager
+    def scratch():
+        with tempfile.TemporaryDirectory(prefix="nl_unwarp_report_") as tmp:
+            outputs.field = outputs.field or str(Path(tmp) / "field.nii.gz")
+            outputs.jacobian = outputs.jacobian or str(Path(tmp) / "jacobian.nii.gz")
+            yield outputs
+
+    return scratch()
+
+
+def _add_report_parser(sub) -> None:
+    p = sub.add_parser("report", help="write an HTML quality report: of an image, or of a coil model")
+    kinds = p.add_subparsers(dest="report_kind", required=True, metavar="KIND")
+    q = kinds.add_parser("coil", help="a coil model page: displacement maps and the radius table")
+    q.add_argument("coil", help="coil model file")
+    q.add_argument("--out", required=True, metavar="HTML", help="page to write")
+    q = kinds.add_parser("image", help="an image's page, from the image and its warp products")
+    q.add_argument("raw", help="raw (distorted) image")
+    q.add_argument("--summary", required=True, help="warp summary JSON (--out-summary of warp/correct)")
+    q.add_argument("--field", required=True, help="ITK displacement field (--out-field)")
+    q.add_argument("--jacobian", help="Jacobian map (--out-jacobian)")
+    q.add_argument("--corrected", help="corrected image, for the before/after comparison")
+    q.add_argument("--coil", help="coil model file: also write its page beside the report")
+    q.add_argument("--out", required=True, metavar="HTML", help="page to write")
+
+
+def _cmd_report(args, progress: _Progress) -> None:
+    from .report.files import write_coil_page, write_correction_report
+
+    progress.step(f"writing the {args.report_kind} report")
+    if args.report_kind == "coil":
+        print(f"report           {write_coil_page(args.coil, args.out)}")
+        return
+    pages = write_correction_report(args.out, raw_file=args.raw, corrected_file=args.corrected,
+                                    summary=args.summary, field_file=args.field,
+                                    jacobian_file=args.jacobian, coil_file=args.coil)
+    print(f"report           {pages[0]}" + (f" (coil model page {pages[1].name})" if len(pages) > 1 else ""))
+
+
+COMMANDS["report"] = _cmd_report
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -118,7 +118,8 @@ def _write_decisions(rows: list[dict], output_dir: Path) -> None:
         lines.append("\t".join(str(value[c]) for c in cols))
     with OutputSet() as out:
         out.reserve(output_dir / DECISIONS_FILE).write_text("\n".join(lines) + "\n", encoding="utf-8")
-        out.reserve(output_dir / ".bidsignore").write_text(DECISIONS_FILE + "\n", encoding="utf-8")
+        out.reserve(output_dir / ".bidsignore").write_text(DECISIONS_FILE + "\nreports/\n",
+                                                           encoding="utf-8")
 
 
 def run(options: RunOptions, *, plan: Plan | None = None) -> tuple[list[dict], list[str]]:
@@ -171,4 +172,7 @@ def run(options: RunOptions, *, plan: Plan | None = None) -> tuple[list[dict], l
             failures = sorted(str(p) for p in after - before) or ["see the nipype log"]
     rows = summary_rows(plan, output_dir)
     _write_decisions(rows, output_dir)
+    from ..report.files import write_dataset_report
+
+    write_dataset_report(output_dir, plan)
     return rows, failures

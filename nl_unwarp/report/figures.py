@@ -66,7 +66,7 @@ class Plane:
             sl = sl[::-1]
         if self.h_flip:
             sl = sl[:, ::-1]
-        return sl[::self.stride, ::self.stride]
+        return sl[:: self.stride, :: self.stride]
 
     def ijk(self, shape: Sequence[int]) -> np.ndarray:
         """Voxel indices (rows, cols, 3) of the shown pixels."""
@@ -128,8 +128,12 @@ def _decorate(ax, plane: Plane, shown: np.ndarray) -> None:
     left, right, bottom, top = plane.letters
     from matplotlib import patheffects
 
-    style = {"color": "#ffd400", "fontsize": 10, "fontweight": "bold",
-             "path_effects": [patheffects.withStroke(linewidth=2.2, foreground="black")]}
+    style = {
+        "color": "#ffd400",
+        "fontsize": 10,
+        "fontweight": "bold",
+        "path_effects": [patheffects.withStroke(linewidth=2.2, foreground="black")],
+    }
     ax.text(x0 + 0.02 * (x1 - x0), (y0 + y1) / 2, left, va="center", ha="left", **style)
     ax.text(x1 - 0.02 * (x1 - x0), (y0 + y1) / 2, right, va="center", ha="right", **style)
     ax.text((x0 + x1) / 2, y0 + 0.02 * (y1 - y0), bottom, va="bottom", ha="center", **style)
@@ -152,8 +156,15 @@ def _radius(ax, plane: Plane, dist: np.ndarray | None, radius_mm: float | None) 
 
 
 def _anatomy(ax, plane: Plane, shown: np.ndarray, window: tuple[float, float]) -> None:
-    ax.imshow(shown, cmap="gray", origin="lower", extent=plane.extent_mm(shown), vmin=window[0],
-              vmax=window[1], interpolation="nearest")
+    ax.imshow(
+        shown,
+        cmap="gray",
+        origin="lower",
+        extent=plane.extent_mm(shown),
+        vmin=window[0],
+        vmax=window[1],
+        interpolation="nearest",
+    )
 
 
 def intensity_window(slices: Sequence[np.ndarray]) -> tuple[float, float]:
@@ -204,11 +215,19 @@ def magnitude_figure(views: VolumeViews, magnitude_mm: np.ndarray, vmax_mm: floa
     fig, axes = _axes_row(len(views.planes))
     levels = _nice_levels(vmax_mm)
     drawn, im = False, None
-    for ax, plane, anat, dist in zip(axes, views.planes, views.anatomy, views.distance_mm):
+    for ax, plane, anat, dist in zip(axes, views.planes, views.anatomy, views.distance_mm, strict=True):
         _anatomy(ax, plane, anat, views.window)
         mag = plane.take(magnitude_mm)
-        im = ax.imshow(mag, cmap="inferno", alpha=0.55, origin="lower", extent=plane.extent_mm(mag),
-                       vmin=0, vmax=vmax_mm or 1.0, interpolation="bilinear")
+        im = ax.imshow(
+            mag,
+            cmap="inferno",
+            alpha=0.55,
+            origin="lower",
+            extent=plane.extent_mm(mag),
+            vmin=0,
+            vmax=vmax_mm or 1.0,
+            interpolation="bilinear",
+        )
         if levels and float(mag.max()) > levels[0]:
             hc, vc = _centres(plane, mag)
             cs = ax.contour(hc, vc, mag, levels=levels, colors="white", linewidths=0.7)
@@ -250,8 +269,13 @@ def _grid_lines(plane: Plane, shown: np.ndarray, offsets: tuple[np.ndarray, np.n
     return moved
 
 
-def before_after_figures(views: VolumeViews, raw: np.ndarray, corrected: np.ndarray | None,
-                         disp_ras_mm: np.ndarray, affine: np.ndarray) -> tuple[bytes, bytes | None]:
+def before_after_figures(
+    views: VolumeViews,
+    raw: np.ndarray,
+    corrected: np.ndarray | None,
+    disp_ras_mm: np.ndarray,
+    affine: np.ndarray,
+) -> tuple[bytes, bytes | None]:
     """The raw image with the true grid as the scanner bent it, and the corrected image with it straight.
 
     A grid line drawn at true positions :math:`p` appears in the raw image at
@@ -263,7 +287,7 @@ def before_after_figures(views: VolumeViews, raw: np.ndarray, corrected: np.ndar
             pngs.append(None)
             continue
         fig, axes = _axes_row(len(views.planes), colorbar=False)
-        for ax, plane, dist in zip(axes, views.planes, views.distance_mm):
+        for ax, plane, dist in zip(axes, views.planes, views.distance_mm, strict=True):
             shown = plane.take(image)
             _anatomy(ax, plane, shown, views.window)
             offsets = plane.offsets_mm(disp_ras_mm, affine) if bent else None
@@ -274,8 +298,10 @@ def before_after_figures(views: VolumeViews, raw: np.ndarray, corrected: np.ndar
             ax.set_ylim(y0, y1)
             _radius(ax, plane, dist, views.valid_radius_mm)
             _decorate(ax, plane, shown)
-        fig.suptitle("before: raw image, true grid as encoded" if bent else
-                     "after: corrected image, true grid", fontsize=10)
+        fig.suptitle(
+            "before: raw image, true grid as encoded" if bent else "after: corrected image, true grid",
+            fontsize=10,
+        )
         pngs.append(_png(fig))
     return pngs[0], pngs[1]
 
@@ -286,10 +312,16 @@ def jacobian_figure(views: VolumeViews, jacobian: np.ndarray, jac_range: tuple[f
     spread = max(abs(jac_range[0] - 1), abs(jac_range[1] - 1), 1e-4)
     norm = TwoSlopeNorm(vcenter=1.0, vmin=1 - spread, vmax=1 + spread)
     im = None
-    for ax, plane, dist in zip(axes, views.planes, views.distance_mm):
+    for ax, plane, dist in zip(axes, views.planes, views.distance_mm, strict=True):
         shown = plane.take(jacobian)
-        im = ax.imshow(shown, cmap="RdBu_r", norm=norm, origin="lower", extent=plane.extent_mm(shown),
-                       interpolation="bilinear")
+        im = ax.imshow(
+            shown,
+            cmap="RdBu_r",
+            norm=norm,
+            origin="lower",
+            extent=plane.extent_mm(shown),
+            interpolation="bilinear",
+        )
         _radius(ax, plane, dist, views.valid_radius_mm)
         _decorate(ax, plane, shown)
     fig.colorbar(im, ax=list(axes), label="Jacobian determinant", shrink=0.85)
@@ -305,8 +337,10 @@ def slice_profile_figure(profile: Mapping) -> bytes:
     def arr(key):
         return np.array([np.nan if v is None else v for v in profile[key]], float)
 
-    for ax, stem, title in ((axes[0], "shift", "slice position shift"),
-                            (axes[1], "thickness_change", "slice thickness change")):
+    for ax, stem, title in (
+        (axes[0], "shift", "slice position shift"),
+        (axes[1], "thickness_change", "slice thickness change"),
+    ):
         mean, lo, hi = arr(f"{stem}_mean_mm"), arr(f"{stem}_min_mm"), arr(f"{stem}_max_mm")
         ax.fill_between(pos, lo, hi, color="#1f6feb", alpha=0.25, label="min..max across the slice")
         ax.plot(pos, mean, "o-", color="#1f6feb", markersize=3, label="mean")
@@ -335,15 +369,31 @@ def dataset_figure(points: Sequence[Mapping]) -> bytes:
     seen = set()
     for g, group in enumerate(groups):
         members = [p for p in points if p["group"] == group and p["value"] is not None]
-        offsets = np.linspace(-0.25, 0.25, len(members)) if len(members) > 1 else [0.0]
-        for dx, p in zip(offsets, members):
+        offsets = np.linspace(-0.25, 0.25, len(members)) if len(members) > 1 else [0.0] * len(members)
+        for dx, p in zip(offsets, members, strict=True):
             label = p["decision"] if p["decision"] not in seen else None
             seen.add(p["decision"])
-            ax.scatter(g + dx, p["value"], marker=markers.get(p["decision"], "D"), s=34, color="#1f6feb",
-                       alpha=0.8, label=label, zorder=3)
+            ax.scatter(
+                g + dx,
+                p["value"],
+                marker=markers.get(p["decision"], "D"),
+                s=34,
+                color="#1f6feb",
+                alpha=0.8,
+                label=label,
+                zorder=3,
+            )
             if p["flagged"]:
-                ax.scatter(g + dx, p["value"], s=150, facecolors="none", edgecolors="#d1242f",
-                           linewidths=1.4, zorder=4, label="flagged" if "flagged" not in seen else None)
+                ax.scatter(
+                    g + dx,
+                    p["value"],
+                    s=150,
+                    facecolors="none",
+                    edgecolors="#d1242f",
+                    linewidths=1.4,
+                    zorder=4,
+                    label="flagged" if "flagged" not in seen else None,
+                )
                 seen.add("flagged")
     ax.set_xticks(range(len(groups)), groups, fontsize=8)
     ax.set_xlim(-0.6, len(groups) - 0.4)
@@ -371,9 +421,10 @@ def coil_planes_figure(coil, *, points: int = 121) -> bytes:
         maps.append((fixed, i, j, mag))
     vmax = max(float(np.nanmax(m[3])) for m in maps) or 1.0
     im = None
-    for ax, (fixed, i, j, mag) in zip(axes, maps):
-        im = ax.imshow(mag, origin="lower", extent=(-reach, reach, -reach, reach), cmap="inferno",
-                       vmin=0, vmax=vmax)
+    for ax, (fixed, i, j, mag) in zip(axes, maps, strict=True):
+        im = ax.imshow(
+            mag, origin="lower", extent=(-reach, reach, -reach, reach), cmap="inferno", vmin=0, vmax=vmax
+        )
         levels = _nice_levels(vmax)
         if levels:
             cs = ax.contour(t, t, mag, levels=levels, colors="white", linewidths=0.7)

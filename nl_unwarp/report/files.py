@@ -22,8 +22,15 @@ from .pages import (
 )
 from .stats import fov_centre_ras_mm, image_flags
 
-__all__ = ["REPORTS_DIR", "image_report_name", "write_coil_page", "write_dataset_report",
-           "write_image_report", "write_page"]
+__all__ = [
+    "REPORTS_DIR",
+    "image_report_name",
+    "write_coil_page",
+    "write_correction_report",
+    "write_dataset_report",
+    "write_image_report",
+    "write_page",
+]
 
 #: Folder of the reports inside a derivatives dataset.
 REPORTS_DIR = "reports"
@@ -57,8 +64,13 @@ def _field_on_grid(field_file: str | Path, shape, affine: np.ndarray) -> np.ndar
     ijk = np.stack(np.meshgrid(*[np.arange(n) for n in shape[:3]], indexing="ij"), -1).astype(float)
     inv = np.linalg.inv(field_affine)
     coords = index_to_ras(inv, index_to_ras(affine, ijk))
-    return np.stack([map_coordinates(disp[..., c], np.moveaxis(coords, -1, 0), order=1, mode="nearest")
-                     for c in range(3)], -1).astype(np.float32)
+    return np.stack(
+        [
+            map_coordinates(disp[..., c], np.moveaxis(coords, -1, 0), order=1, mode="nearest")
+            for c in range(3)
+        ],
+        -1,
+    ).astype(np.float32)
 
 
 def _load(path) -> tuple[np.ndarray, np.ndarray]:
@@ -68,11 +80,19 @@ def _load(path) -> tuple[np.ndarray, np.ndarray]:
     return img.data, img.affine
 
 
-def write_image_report(out_html: str | Path, *, raw_file: str | Path, summary: Mapping | str | Path,
-                       field_file: str | Path, jacobian_file: str | Path | None = None,
-                       corrected_file: str | Path | None = None, decision: Mapping | None = None,
-                       metadata: Mapping | None = None, title: str | None = None,
-                       coil_page_href: str | None = None) -> Path:
+def write_image_report(
+    out_html: str | Path,
+    *,
+    raw_file: str | Path,
+    summary: Mapping | str | Path,
+    field_file: str | Path,
+    jacobian_file: str | Path | None = None,
+    corrected_file: str | Path | None = None,
+    decision: Mapping | None = None,
+    metadata: Mapping | None = None,
+    title: str | None = None,
+    coil_page_href: str | None = None,
+) -> Path:
     """Write the per-image page from an image and its warp products.
 
     Parameters
@@ -106,8 +126,18 @@ def write_image_report(out_html: str | Path, *, raw_file: str | Path, summary: M
         jac = _finite_difference_jacobian(disp, affine)
     corrected = _load(corrected_file)[0] if corrected_file is not None else None
     href = coil_page_href or coil_page_name(summary["coil_model"].get("sha256"))
-    inputs = ImageInputs(title or Path(raw_file).name, raw, affine, dict(summary), disp, jac, corrected,
-                         dict(decision) if decision else None, dict(metadata) if metadata else None, href)
+    inputs = ImageInputs(
+        title or Path(raw_file).name,
+        raw,
+        affine,
+        dict(summary),
+        disp,
+        jac,
+        corrected,
+        dict(decision) if decision else None,
+        dict(metadata) if metadata else None,
+        href,
+    )
     return write_page(out_html, render_image_page(inputs))
 
 
@@ -115,8 +145,18 @@ def _finite_difference_jacobian(disp: np.ndarray, affine: np.ndarray) -> np.ndar
     """det(I + dd/dp) by central differences on the grid (``numpy.gradient``)."""
     a3 = np.asarray(affine, float)[:3, :3]
     inv = np.linalg.inv(a3)
-    grads = np.stack([np.stack(np.gradient(disp[..., c], axis=(0, 1, 2)) if min(disp.shape[:3]) > 1
-                               else [np.zeros(disp.shape[:3])] * 3, -1) for c in range(3)], -2)
+    grads = np.stack(
+        [
+            np.stack(
+                np.gradient(disp[..., c], axis=(0, 1, 2))
+                if min(disp.shape[:3]) > 1
+                else [np.zeros(disp.shape[:3])] * 3,
+                -1,
+            )
+            for c in range(3)
+        ],
+        -2,
+    )
     # d d_c / d p = (d d_c / d ijk) inv(A)
     jac = np.eye(3) + grads @ inv
     return np.linalg.det(jac).astype(np.float32)
@@ -179,16 +219,65 @@ def write_dataset_report(output_dir: str | Path, plan) -> Path:
             coil_href = coil_page_name(sha)
             coils.setdefault(coil_href, row.decision.coil_path)
         page_name = image_report_name(row.relpath)
-        flags = [] if decision is None else image_flags(summary=summary, decision=decision,
-                                                        fov_centre_ras_mm=_fov_centre(row.path))
-        entries.append(DatasetEntry(row.relpath, decision, summary, flags,
-                                    page_name if (reports / page_name).exists() else None, coil_href,
-                                    row.problem))
+        flags = (
+            []
+            if decision is None
+            else image_flags(summary=summary, decision=decision, fov_centre_ras_mm=_fov_centre(row.path))
+        )
+        entries.append(
+            DatasetEntry(
+                row.relpath,
+                decision,
+                summary,
+                flags,
+                page_name if (reports / page_name).exists() else None,
+                coil_href,
+                row.problem,
+            )
+        )
     with OutputSet() as out:
         for href, path in coils.items():
-            out.reserve(reports / href).write_text(render_coil_page(load_coil(path), coil_sha256(path)),
-                                                   encoding="utf-8")
+            out.reserve(reports / href).write_text(
+                render_coil_page(load_coil(path), coil_sha256(path)), encoding="utf-8"
+            )
         index = reports / INDEX_NAME
-        out.reserve(index).write_text(render_dataset_page(entries, title=Path(plan.bids_dir).name),
-                                      encoding="utf-8")
+        out.reserve(index).write_text(
+            render_dataset_page(entries, title=Path(plan.bids_dir).name), encoding="utf-8"
+        )
     return index
+
+
+def write_correction_report(
+    out_html: str | Path,
+    *,
+    raw_file: str | Path,
+    summary: Mapping | str | Path,
+    field_file: str | Path,
+    jacobian_file: str | Path | None = None,
+    corrected_file: str | Path | None = None,
+    coil_file: str | Path | None = None,
+) -> list[Path]:
+    """The page of one correction, and its coil model's page beside it (when the coil file is given).
+
+    Returns
+    -------
+    list of Path
+        The image page, then the coil model page (if written).
+    """
+    if not isinstance(summary, Mapping):
+        summary = json.loads(Path(summary).read_text(encoding="utf-8"))
+    out_html = Path(out_html)
+    pages = [
+        write_image_report(
+            out_html,
+            raw_file=raw_file,
+            summary=summary,
+            field_file=field_file,
+            jacobian_file=jacobian_file,
+            corrected_file=corrected_file,
+        )
+    ]
+    coil_name = coil_page_name(summary["coil_model"].get("sha256"))
+    if coil_file is not None and coil_name:
+        pages.append(write_coil_page(coil_file, out_html.parent / coil_name))
+    return pages

@@ -18,7 +18,7 @@ from .. import __version__
 __all__ = ["CAUTION", "Cell", "figure", "key_value_table", "number", "page", "table", "toggle"]
 
 #: Shown on every page.
-CAUTION = ("For research pipelines, not diagnosis; defer to local scanner QA and licensed practice.")
+CAUTION = "For research pipelines, not diagnosis; defer to local scanner QA and licensed practice."
 
 _CSS = """
 body{font:14px/1.45 system-ui,-apple-system,"Segoe UI",sans-serif;color:#1b1f24;margin:0;background:#f6f7f9}
@@ -30,7 +30,8 @@ table{border-collapse:collapse;margin:6px 0 10px;background:#fff}
 th,td{border:1px solid #d5d9de;padding:3px 8px;text-align:left;vertical-align:top}
 th{background:#eef1f4}td.num{text-align:right;font-variant-numeric:tabular-nums}
 figure{margin:8px 0;background:#fff;border:1px solid #d5d9de;padding:6px;display:inline-block}
-figure img{max-width:100%;height:auto;display:block}figcaption{color:#57606a;font-size:12.5px;max-width:1100px}
+figure img{max-width:100%;height:auto;display:block}
+figcaption{color:#57606a;font-size:12.5px;max-width:1100px}
 .flag{background:#ffe1e1;color:#8a1111;border-radius:3px;padding:0 5px;margin-right:4px;white-space:nowrap}
 .ok{color:#1a7f37}
 .toggle>input{position:absolute;opacity:0}
@@ -68,8 +69,9 @@ $body
 class Cell:
     """A table cell: shown text, and the exact value for machines (``data-value``)."""
 
-    def __init__(self, text: str, *, value=None, key: str | None = None, num: bool = False,
-                 raw_html: bool = False) -> None:
+    def __init__(
+        self, text: str, *, value=None, key: str | None = None, num: bool = False, raw_html: bool = False
+    ) -> None:
         self.text, self.value, self.key, self.num, self.raw_html = text, value, key, num, raw_html
 
     def render(self) -> str:
@@ -92,8 +94,13 @@ def number(value, digits: int = 3, *, key: str | None = None, unit: str = "") ->
     return Cell(text, value=float(value), key=key, num=True)
 
 
-def table(header: Sequence[str], rows: Iterable[Sequence], *, table_id: str | None = None,
-          caption: str | None = None) -> str:
+def table(
+    header: Sequence[str],
+    rows: Iterable[Sequence],
+    *,
+    table_id: str | None = None,
+    caption: str | None = None,
+) -> str:
     """An HTML table; cells are :class:`Cell` or anything ``str`` shows (escaped)."""
     head = "".join(f"<th>{escape(h)}</th>" for h in header)
     thead = f"<thead><tr>{head}</tr></thead>" if any(header) else ""
@@ -114,23 +121,33 @@ def key_value_table(items: Mapping[str, Cell | str], *, table_id: str | None = N
 def figure(png: bytes, caption: str, *, fig_id: str, alt: str) -> str:
     """A figure with its PNG embedded as a data URI."""
     data = base64.b64encode(png).decode("ascii")
-    return (f'<figure id="{escape(fig_id)}"><img alt="{escape(alt)}" src="data:image/png;base64,{data}">'
-            f"<figcaption>{escape(caption)}</figcaption></figure>")
+    return (
+        f'<figure id="{escape(fig_id)}"><img alt="{escape(alt)}" src="data:image/png;base64,{data}">'
+        f"<figcaption>{escape(caption)}</figcaption></figure>"
+    )
 
 
 def toggle(ident: str, label_a: str, html_a: str, label_b: str, html_b: str) -> str:
     """Two panes and two radio buttons that show one or the other (the first by default)."""
     ident = escape(ident)
-    return (f'<div class="toggle" id="{ident}">'
-            f'<input type="radio" class="show-a" name="{ident}" id="{ident}-a" checked>'
-            f'<label for="{ident}-a">{escape(label_a)}</label>'
-            f'<input type="radio" class="show-b" name="{ident}" id="{ident}-b">'
-            f'<label for="{ident}-b">{escape(label_b)}</label>'
-            f'<span class="sub"> &nbsp;(press <kbd>t</kbd> to flip)</span>'
-            f'<div class="pane a">{html_a}</div><div class="pane b">{html_b}</div></div>')
+    return (
+        f'<div class="toggle" id="{ident}">'
+        f'<input type="radio" class="show-a" name="{ident}" id="{ident}-a" checked>'
+        f'<label for="{ident}-a">{escape(label_a)}</label>'
+        f'<input type="radio" class="show-b" name="{ident}" id="{ident}-b">'
+        f'<label for="{ident}-b">{escape(label_b)}</label>'
+        f'<span class="sub"> &nbsp;(press <kbd>t</kbd> to flip)</span>'
+        f'<div class="pane a">{html_a}</div><div class="pane b">{html_b}</div></div>'
+    )
 
 
 def page(title: str, body: str) -> str:
     """A complete HTML document with the caution at the top and in the footer."""
-    return _PAGE.substitute(title=escape(title), body=body, css=_CSS, script=_SCRIPT,
-                            caution=escape(CAUTION), version=escape(__version__))
+    return _PAGE.substitute(
+        title=escape(title),
+        body=body,
+        css=_CSS,
+        script=_SCRIPT,
+        caution=escape(CAUTION),
+        version=escape(__version__),
+    )

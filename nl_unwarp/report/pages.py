@@ -15,15 +15,33 @@ from . import figures as figs
 from .html import Cell, figure, key_value_table, number, page, table, toggle
 from .stats import decided_by_default, displacement_stats, head_mask, slice_profile
 
-__all__ = ["DatasetEntry", "ImageInputs", "coil_page_name", "render_coil_page", "render_dataset_page",
-           "render_image_page"]
+__all__ = [
+    "DatasetEntry",
+    "ImageInputs",
+    "coil_page_name",
+    "render_coil_page",
+    "render_dataset_page",
+    "render_image_page",
+]
 
 #: Sidecar keys a decision reads, shown beside it (BIDS names; a site may map others).
-DECISION_METADATA_KEYS = ("Manufacturer", "ManufacturersModelName", "DeviceSerialNumber", "StationName",
-                          "SoftwareVersions", "MRAcquisitionType", "ImageType", "NonlinearGradientCorrection",
-                          "NonLinearGradientCorrection", "PatientPosition", "TablePosition")
-#: Summary keys that may hold the diffusion b-value deviation per shell.
-SHELL_KEYS = ("bvalue_deviation", "b_value_deviation", "bvalue_deviation_per_shell", "shells")
+DECISION_METADATA_KEYS = (
+    "Manufacturer",
+    "ManufacturersModelName",
+    "DeviceSerialNumber",
+    "StationName",
+    "SoftwareVersions",
+    "MRAcquisitionType",
+    "ImageType",
+    "NonlinearGradientCorrection",
+    "NonLinearGradientCorrection",
+    "PatientPosition",
+    "TablePosition",
+)
+#: Summary keys that may hold the diffusion b-value deviation per shell: a block
+#: with a ``shells`` list (as :func:`nl_unwarp.diffusion.weighting_summary`
+#: gives), or the list itself.
+SHELL_KEYS = ("diffusion", "bvalue_deviation", "b_value_deviation", "weighting", "shells")
 
 
 def coil_page_name(sha256: str | None) -> str | None:
@@ -74,27 +92,38 @@ def _first_volume(data: np.ndarray) -> np.ndarray:
 
 
 def _vec(values, digits=1) -> str:
-    return "(" + ", ".join(f"{v:.{digits}f}" for v in values) + ")"
+    # + 0.0 turns a negative zero into zero: "-0.0" reads as a sign error.
+    return "(" + ", ".join(f"{round(float(v), digits) + 0.0:.{digits}f}" for v in values) + ")"
 
 
 def _identity_table(s: Mapping, coil_href: str | None) -> str:
     coil = s["coil_model"]
-    link = (f' &middot; <a href="{escape(coil_href)}">coil model page</a>' if coil_href else "")
+    link = f' &middot; <a href="{escape(coil_href)}">coil model page</a>' if coil_href else ""
     items = {
-        "coil model": Cell(escape(str(coil["label"])) + link, raw_html=True, key="coil_label",
-                           value=coil["label"]),
+        "coil model": Cell(
+            escape(str(coil["label"])) + link, raw_html=True, key="coil_label", value=coil["label"]
+        ),
         "coil model SHA-256": Cell(str(coil["sha256"]), key="coil_sha256", value=coil["sha256"]),
         "harmonic degree": Cell(str(coil["degree"]), key="coil_degree", value=coil["degree"]),
         "valid radius": number(coil["valid_radius_mm"], 1, key="valid_radius_mm", unit="mm"),
         "patient position": Cell(s["patient_position"], key="patient_position", value=s["patient_position"]),
-        "isocenter used (world RAS)": Cell(_vec(s["isocenter_ras_mm"]) + " mm", key="isocenter_ras_mm",
-                                           value=[float(v) for v in s["isocenter_ras_mm"]]),
-        "isocenter offset (device)": Cell(_vec(s["isocenter_offset_mm"]) + " mm", key="isocenter_offset_mm",
-                                          value=[float(v) for v in s["isocenter_offset_mm"]]),
-        "isocenter from": Cell(s["isocenter_offset_from"], key="isocenter_offset_from",
-                               value=s["isocenter_offset_from"]),
+        "isocenter used (world RAS)": Cell(
+            _vec(s["isocenter_ras_mm"]) + " mm",
+            key="isocenter_ras_mm",
+            value=[float(v) for v in s["isocenter_ras_mm"]],
+        ),
+        "isocenter offset (device)": Cell(
+            _vec(s["isocenter_offset_mm"]) + " mm",
+            key="isocenter_offset_mm",
+            value=[float(v) for v in s["isocenter_offset_mm"]],
+        ),
+        "isocenter from": Cell(
+            s["isocenter_offset_from"], key="isocenter_offset_from", value=s["isocenter_offset_from"]
+        ),
         "correction mode": Cell(s["mode"], key="mode", value=s["mode"]),
-        "slice axis": Cell("n/a" if s.get("slice_axis") is None else "ijk"[s["slice_axis"]], key="slice_axis"),
+        "slice axis": Cell(
+            "n/a" if s.get("slice_axis") is None else "ijk"[s["slice_axis"]], key="slice_axis"
+        ),
         "software": Cell(f"{s['software']['name']} {s['software']['version']}"),
     }
     return key_value_table(items, table_id="identity")
@@ -117,8 +146,9 @@ def _decision_section(decision: Mapping | None, metadata: Mapping | None) -> str
     if metadata:
         rows = [[k, Cell(_json_text(metadata[k]), key=k)] for k in DECISION_METADATA_KEYS if k in metadata]
         rows = rows or [["(none of the keys a decision reads)", ""]]
-        out += "<p class='sub'>Sidecar metadata the decision read:</p>" + table(["key", "value"], rows,
-                                                                              table_id="metadata")
+        out += "<p class='sub'>Sidecar metadata the decision read:</p>" + table(
+            ["key", "value"], rows, table_id="metadata"
+        )
     return out
 
 
@@ -135,18 +165,29 @@ def _displacement_table(stats: Mapping, s: Mapping) -> str:
         st = stats.get(region)
         if st is None:
             continue
-        rows.append([label, Cell(str(st["voxels"]), value=st["voxels"], key=f"{region}.voxels", num=True),
-                     number(st["max_mm"], key=f"{region}.max_mm"), number(st["p50_mm"], key=f"{region}.p50_mm"),
-                     number(st["p95_mm"], key=f"{region}.p95_mm"), number(st["p99_mm"], key=f"{region}.p99_mm")])
+        rows.append(
+            [
+                label,
+                Cell(str(st["voxels"]), value=st["voxels"], key=f"{region}.voxels", num=True),
+                number(st["max_mm"], key=f"{region}.max_mm"),
+                number(st["p50_mm"], key=f"{region}.p50_mm"),
+                number(st["p95_mm"], key=f"{region}.p95_mm"),
+                number(st["p99_mm"], key=f"{region}.p99_mm"),
+            ]
+        )
     out = table(head, rows, table_id="displacement")
     extra = {
-        "max inside the valid radius": number(s.get("displacement_max_inside_valid_mm"),
-                                              key="displacement_max_inside_valid_mm", unit="mm"),
-        "voxels beyond the valid radius": number(100 * s["outside_valid_fraction"], 2,
-                                                 key="outside_valid_percent", unit="%"),
+        "max inside the valid radius": number(
+            s.get("displacement_max_inside_valid_mm"), key="displacement_max_inside_valid_mm", unit="mm"
+        ),
+        "voxels beyond the valid radius": number(
+            100 * s["outside_valid_fraction"], 2, key="outside_valid_percent", unit="%"
+        ),
         "Jacobian determinant, min": number(s["jacobian_min"], 4, key="jacobian_min"),
         "Jacobian determinant, max": number(s["jacobian_max"], 4, key="jacobian_max"),
-        "warp lattice / interpolation error": Cell(f"{s['lattice_mm']:g} mm / {s['interpolation_error_mm']:.1e} mm"),
+        "warp lattice / interpolation error": Cell(
+            f"{s['lattice_mm']:g} mm / {s['interpolation_error_mm']:.1e} mm"
+        ),
     }
     return out + key_value_table(extra, table_id="warp")
 
@@ -165,34 +206,104 @@ def _slice_section(inputs: ImageInputs, valid: np.ndarray) -> str:
     inputs.extra["slice_profile"] = prof
     rows = []
     for k, pos in enumerate(prof["position_mm"]):
-        rows.append([Cell(str(k), num=True), number(pos, 1),
-                     number(prof["shift_mean_mm"][k], key=f"shift_mean_mm.{k}"),
-                     number(prof["shift_min_mm"][k]), number(prof["shift_max_mm"][k]),
-                     number(prof["bow_mm"][k], key=f"bow_mm.{k}"),
-                     number(prof["thickness_change_mean_mm"][k], key=f"thickness_change_mean_mm.{k}")])
-    caption = (f"Slices {prof['thickness_mm']:.1f} mm apart along voxel axis {'ijk'[axis]}; through-plane "
-               "part of the displacement of the scanner's encoding (before correction), voxels inside the "
-               "valid radius. Bow: peak-to-peak departure of the displaced slice from its best-fit plane.")
-    return (figure(figs.slice_profile_figure(prof), caption, fig_id="fig-slices",
-                   alt="per-slice through-plane displacement")
-            + "<details><summary>per-slice table</summary>"
-            + table(["slice", "position (mm)", "mean shift (mm)", "min shift (mm)", "max shift (mm)",
-                     "bow (mm)", "mean thickness change (mm)"], rows, table_id="slices") + "</details>")
+        rows.append(
+            [
+                Cell(str(k), num=True),
+                number(pos, 1),
+                number(prof["shift_mean_mm"][k], key=f"shift_mean_mm.{k}"),
+                number(prof["shift_min_mm"][k]),
+                number(prof["shift_max_mm"][k]),
+                number(prof["bow_mm"][k], key=f"bow_mm.{k}"),
+                number(prof["thickness_change_mean_mm"][k], key=f"thickness_change_mean_mm.{k}"),
+            ]
+        )
+    caption = (
+        f"Slices {prof['thickness_mm']:.1f} mm apart along voxel axis {'ijk'[axis]}; through-plane "
+        "part of the displacement of the scanner's encoding (before correction), voxels inside the "
+        "valid radius. Bow: peak-to-peak departure of the displaced slice from its best-fit plane."
+    )
+    return (
+        figure(
+            figs.slice_profile_figure(prof),
+            caption,
+            fig_id="fig-slices",
+            alt="per-slice through-plane displacement",
+        )
+        + "<details><summary>per-slice table</summary>"
+        + table(
+            [
+                "slice",
+                "position (mm)",
+                "mean shift (mm)",
+                "min shift (mm)",
+                "max shift (mm)",
+                "bow (mm)",
+                "mean thickness change (mm)",
+            ],
+            rows,
+            table_id="slices",
+        )
+        + "</details>"
+    )
+
+
+def _find_shells(summary: Mapping) -> tuple[list, Mapping]:
+    """Per-shell records and their container, wherever the summary keeps them."""
+    for key in SHELL_KEYS:
+        block = summary.get(key)
+        if isinstance(block, Mapping) and isinstance(block.get("shells"), list):
+            return block["shells"], block
+        if isinstance(block, list) and block:
+            return block, {}
+    return [], {}
 
 
 def _shell_section(summary: Mapping) -> str:
-    for key in SHELL_KEYS:
-        shells = summary.get(key)
-        if shells:
-            break
-    else:
+    """b-value deviation per shell (``b_eff / b - 1`` in %), when the summary has it."""
+    shells, block = _find_shells(summary)
+    if not shells:
         return ""
-    if isinstance(shells, Mapping):
-        shells = [{"shell": k, **(v if isinstance(v, Mapping) else {"value": v})} for k, v in shells.items()]
-    cols = list(dict.fromkeys(k for row in shells for k in row))
-    rows = [[number(r[c], 4, key=f"{c}.{i}") if isinstance(r.get(c), float) else Cell(_json_text(r.get(c, "")))
-             for c in cols] for i, r in enumerate(shells)]
-    return ("<h2>Diffusion: b-value deviation per shell</h2>" + table(cols, rows, table_id="shells"))
+    rows = []
+    for i, r in enumerate(shells):
+
+        def pct(name, i=i, r=r):
+            value = r.get(name)
+            cell = number(None if value is None else 100 * value, 3, key=f"{name}_percent.{i}")
+            cell.value = value
+            return cell
+
+        vols = r.get("volumes")
+        rows.append(
+            [
+                number(r.get("bval", r.get("bvalue")), 0, key=f"bval.{i}"),
+                Cell(str(len(vols)) if isinstance(vols, list) else "-", num=True),
+                pct("median_deviation"),
+                pct("min_deviation"),
+                pct("max_deviation"),
+                Cell(_vec(r["min_at_ras_mm"]) if r.get("min_at_ras_mm") else "-"),
+                Cell(_vec(r["max_at_ras_mm"]) if r.get("max_at_ras_mm") else "-"),
+            ]
+        )
+    note = f" over {block['mask_voxels']} mask voxels" if block.get("mask_voxels") else ""
+    return (
+        "<h2>Diffusion: b-value deviation per shell</h2>"
+        f"<p class='sub'>Effective over nominal b-value minus one, in %{escape(note)}: median over the "
+        "mask of each voxel's mean over the shell's directions, and the extremes over voxels and "
+        "directions (where, in world RAS mm).</p>"
+        + table(
+            [
+                "b (s/mm²)",
+                "volumes",
+                "median (%)",
+                "min (%)",
+                "max (%)",
+                "min at (RAS mm)",
+                "max at (RAS mm)",
+            ],
+            rows,
+            table_id="shells",
+        )
+    )
 
 
 def render_image_page(inputs: ImageInputs) -> str:
@@ -207,40 +318,67 @@ def render_image_page(inputs: ImageInputs) -> str:
     radius = s["coil_model"]["valid_radius_mm"]
     views = figs.volume_views(anatomy, inputs.affine, s["isocenter_ras_mm"], radius)
     mag_png, reached = figs.magnitude_figure(views, mag, stats["image"]["max_mm"] or 0.0)
-    boundary = ("The dashed cyan line is the coil model's valid radius "
-                f"({radius:g} mm); hatched: beyond it, where the correction is extrapolated."
-                if reached else f"The shown planes stay inside the valid radius ({radius:g} mm).")
-    body = [f"<p class='sub'>Image <code>{escape(inputs.title)}</code></p>",
-            "<h2>Coil model, placement and decision</h2>", _identity_table(s, inputs.coil_page_href),
-            "<h2>What was decided, and why</h2>", _decision_section(inputs.decision, inputs.metadata),
-            "<h2>Displacement</h2>",
-            f"<p class='sub'>Head mask: voxels brighter than a fraction of the 99th intensity percentile "
-            f"of the raw image ({int(mask.sum())} voxels).</p>",
-            _displacement_table(stats, s),
-            figure(mag_png, "Displacement magnitude over the raw anatomy, with contours in mm. " + boundary,
-                   fig_id="fig-magnitude", alt="displacement magnitude on three planes")]
+    boundary = (
+        "The dashed cyan line is the coil model's valid radius "
+        f"({radius:g} mm); hatched: beyond it, where the correction is extrapolated."
+        if reached
+        else f"The shown planes stay inside the valid radius ({radius:g} mm)."
+    )
+    body = [
+        f"<p class='sub'>Image <code>{escape(inputs.title)}</code></p>",
+        "<h2>Coil model, placement and decision</h2>",
+        _identity_table(s, inputs.coil_page_href),
+        "<h2>What was decided, and why</h2>",
+        _decision_section(inputs.decision, inputs.metadata),
+        "<h2>Displacement</h2>",
+        f"<p class='sub'>Head mask: voxels brighter than a fraction of the 99th intensity percentile "
+        f"of the raw image ({int(mask.sum())} voxels).</p>",
+        _displacement_table(stats, s),
+        figure(
+            mag_png,
+            "Displacement magnitude over the raw anatomy, with contours in mm. " + boundary,
+            fig_id="fig-magnitude",
+            alt="displacement magnitude on three planes",
+        ),
+    ]
     before, after = figs.before_after_figures(views, anatomy, corrected, inputs.disp_ras_mm, inputs.affine)
     body.append("<h2>Before and after</h2>")
-    cap = ("Green: a grid at true positions. In the raw image it appears where the scanner encoded it "
-           "(bent by the gradient nonlinearity, in-plane part shown); after correction it lies straight "
-           "on the anatomy. Same grey-level window in both.")
+    cap = (
+        "Green: a grid at true positions. In the raw image it appears where the scanner encoded it "
+        "(bent by the gradient nonlinearity, in-plane part shown); after correction it lies straight "
+        "on the anatomy. Same grey-level window in both."
+    )
     if after is not None:
-        body.append(toggle("before-after", "before (raw)", figure(before, cap, fig_id="fig-before", alt="raw"),
-                           "after (corrected)", figure(after, cap, fig_id="fig-after", alt="corrected")))
+        body.append(
+            toggle(
+                "before-after",
+                "before (raw)",
+                figure(before, cap, fig_id="fig-before", alt="raw"),
+                "after (corrected)",
+                figure(after, cap, fig_id="fig-after", alt="corrected"),
+            )
+        )
     else:
-        body.append("<p>The image was not resampled (decision: "
-                    f"{escape(str((inputs.decision or {}).get('action', 'n/a')))}); the raw image is shown "
-                    "with the grid the warp would straighten.</p>")
+        body.append(
+            "<p>The image was not resampled (decision: "
+            f"{escape(str((inputs.decision or {}).get('action', 'n/a')))}); the raw image is shown "
+            "with the grid the warp would straighten.</p>"
+        )
         body.append(figure(before, cap, fig_id="fig-before", alt="raw"))
     jrange = (float(inputs.jacobian.min()), float(inputs.jacobian.max()))
-    body += ["<h2>Jacobian determinant</h2>",
-             figure(figs.jacobian_figure(views, inputs.jacobian, jrange),
-                    f"Volume change of the encoding: range {jrange[0]:.4f} .. {jrange[1]:.4f} in the image "
-                    "(> 1: the scanner stretched the image there, intensities diluted). " + boundary,
-                    fig_id="fig-jacobian", alt="Jacobian determinant on three planes")]
+    body += [
+        "<h2>Jacobian determinant</h2>",
+        figure(
+            figs.jacobian_figure(views, inputs.jacobian, jrange),
+            f"Volume change of the encoding: range {jrange[0]:.4f} .. {jrange[1]:.4f} in the image "
+            "(> 1: the scanner stretched the image there, intensities diluted). " + boundary,
+            fig_id="fig-jacobian",
+            alt="Jacobian determinant on three planes",
+        ),
+    ]
     if _is_2d(inputs):
-        from ..warp import outside_valid_radius
         from ..frames import DeviceFrame
+        from ..warp import outside_valid_radius
 
         body.append("<h2>2D acquisition: through-plane displacement per slice</h2>")
         frame = DeviceFrame(s["patient_position"], s["isocenter_offset_mm"])
@@ -250,33 +388,52 @@ def render_image_page(inputs: ImageInputs) -> str:
     return page(f"Gradient-nonlinearity report: {inputs.title}", "\n".join(body))
 
 
-def render_coil_page(coil, sha256: str | None, *, radii_mm: Sequence[float] = (50.0, 100.0, 150.0, 200.0)) -> str:
+def render_coil_page(
+    coil, sha256: str | None, *, radii_mm: Sequence[float] = (50.0, 100.0, 150.0, 200.0)
+) -> str:
     """The coil model page: displacement maps on the principal planes and the radius table."""
     from ..api import displacement_table
 
     rows = []
     for r in displacement_table(coil, radii_mm):
         key = f"{r['radius_mm']:g}"
-        rows.append([number(r["radius_mm"], 0, key=f"radius_mm.{key}"), number(r["max_mm"], key=f"max_mm.{key}"),
-                     number(r["rms_mm"], key=f"rms_mm.{key}"),
-                     Cell("yes" if r["inside_valid_radius"] else "no (extrapolated)",
-                          key=f"inside_valid_radius.{key}", value=r["inside_valid_radius"])])
+        rows.append(
+            [
+                number(r["radius_mm"], 0, key=f"radius_mm.{key}"),
+                number(r["max_mm"], key=f"max_mm.{key}"),
+                number(r["rms_mm"], key=f"rms_mm.{key}"),
+                Cell(
+                    "yes" if r["inside_valid_radius"] else "no (extrapolated)",
+                    key=f"inside_valid_radius.{key}",
+                    value=r["inside_valid_radius"],
+                ),
+            ]
+        )
     source = coil.source or {}
-    items = {"label": Cell(coil.label, key="label", value=coil.label),
-             "SHA-256": Cell(str(sha256), key="sha256", value=sha256),
-             "harmonic degree": Cell(str(coil.degree), key="degree", value=coil.degree),
-             "valid radius": number(coil.valid_radius_mm, 1, key="valid_radius_mm", unit="mm"),
-             "source": Cell(str(source.get("kind", "unknown")) + (f": {source['description']}"
-                                                               if source.get("description") else ""))}
-    body = ["<h2>Identity</h2>", key_value_table(items, table_id="coil"),
-            "<h2>Displacement on spheres about the isocenter</h2>",
-            table(["radius (mm)", "max |d| (mm)", "rms |d| (mm)", "inside valid radius"], rows,
-                  table_id="radii"),
-            "<h2>Displacement on the principal planes</h2>",
-            figure(figs.coil_planes_figure(coil),
-                   f"Displacement magnitude on the device frame's principal planes through the isocenter, "
-                   f"out to the valid radius ({coil.valid_radius_mm:g} mm, dashed; blank beyond).",
-                   fig_id="fig-coil", alt="coil model displacement maps")]
+    items = {
+        "label": Cell(coil.label, key="label", value=coil.label),
+        "SHA-256": Cell(str(sha256), key="sha256", value=sha256),
+        "harmonic degree": Cell(str(coil.degree), key="degree", value=coil.degree),
+        "valid radius": number(coil.valid_radius_mm, 1, key="valid_radius_mm", unit="mm"),
+        "source": Cell(
+            str(source.get("kind", "unknown"))
+            + (f": {source['description']}" if source.get("description") else "")
+        ),
+    }
+    body = [
+        "<h2>Identity</h2>",
+        key_value_table(items, table_id="coil"),
+        "<h2>Displacement on spheres about the isocenter</h2>",
+        table(["radius (mm)", "max |d| (mm)", "rms |d| (mm)", "inside valid radius"], rows, table_id="radii"),
+        "<h2>Displacement on the principal planes</h2>",
+        figure(
+            figs.coil_planes_figure(coil),
+            f"Displacement magnitude on the device frame's principal planes through the isocenter, "
+            f"out to the valid radius ({coil.valid_radius_mm:g} mm, dashed; blank beyond).",
+            fig_id="fig-coil",
+            alt="coil model displacement maps",
+        ),
+    ]
     return page(f"Coil model: {coil.label}", "\n".join(body))
 
 
@@ -303,40 +460,89 @@ def render_dataset_page(entries: Sequence[DatasetEntry], *, title: str = "datase
     rows = []
     for i, e in enumerate(entries):
         d = e.decision or {}
-        name = (f'<a href="{escape(e.report_href)}">{escape(e.relpath)}</a>' if e.report_href
-                else escape(e.relpath))
-        flags = "".join(f'<span class="flag">{escape(f)}</span>' for f in e.flags) or '<span class="ok">-</span>'
+        shown = escape(e.relpath.rsplit("/", 1)[-1])
+        name = (
+            f'<a href="{escape(e.report_href)}" title="{escape(e.relpath)}">{shown}</a>'
+            if e.report_href
+            else f'<span title="{escape(e.relpath)}">{shown}</span>'
+        )
+        flags = (
+            "".join(f'<span class="flag">{escape(f)}</span>' for f in e.flags) or '<span class="ok">-</span>'
+        )
         dmax = None if e.summary is None else e.summary.get("displacement_max_mm")
-        rows.append([Cell(name, raw_html=True, key=f"image.{i}", value=e.relpath),
-                     Cell(str(d.get("site") or "-")), Cell(str(d.get("rule", "-"))),
-                     Cell(str(d.get("action", "error" if e.problem else "-")), key=f"action.{i}",
-                          value=d.get("action")),
-                     number(dmax, key=f"displacement_max_mm.{i}"),
-                     Cell("-" if e.summary is None else str(e.summary.get("isocenter_offset_from"))),
-                     Cell(str(e.problem or d.get("reason", ""))),
-                     Cell(flags, raw_html=True, key=f"flags.{i}", value=list(e.flags))])
+        rows.append(
+            [
+                Cell(name, raw_html=True, key=f"image.{i}", value=e.relpath),
+                Cell(str(d.get("site") or "-")),
+                Cell(str(d.get("rule", "-"))),
+                Cell(
+                    str(d.get("action", "error" if e.problem else "-")),
+                    key=f"action.{i}",
+                    value=d.get("action"),
+                ),
+                number(dmax, key=f"displacement_max_mm.{i}"),
+                Cell("-" if e.summary is None else str(e.summary.get("isocenter_offset_from"))),
+                Cell(str(e.problem or d.get("reason", ""))),
+                Cell(flags, raw_html=True, key=f"flags.{i}", value=list(e.flags)),
+            ]
+        )
     flagged = [e for e in entries if e.flags]
-    points = [{"group": e.group, "value": None if e.summary is None else e.summary.get("displacement_max_mm"),
-               "decision": (e.decision or {}).get("action", "?"), "flagged": bool(e.flags)} for e in entries]
-    coils = sorted({(e.summary["coil_model"]["label"], e.coil_page_href) for e in entries
-                    if e.summary is not None and e.coil_page_href})
+    points = [
+        {
+            "group": e.group,
+            "value": None if e.summary is None else e.summary.get("displacement_max_mm"),
+            "decision": (e.decision or {}).get("action", "?"),
+            "flagged": bool(e.flags),
+        }
+        for e in entries
+    ]
+    coils = sorted(
+        {
+            (e.summary["coil_model"]["label"], e.coil_page_href)
+            for e in entries
+            if e.summary is not None and e.coil_page_href
+        }
+    )
     coil_list = "".join(f'<li><a href="{escape(h)}">{escape(lbl)}</a></li>' for lbl, h in coils)
     done = sum(e.summary is not None for e in entries)
-    body = [f"<p class='sub'>{len(entries)} image(s), {done} with a warp; {len(flagged)} flagged.</p>",
-            "<h2>Maximum displacement by scanner</h2>",
-            figure(figs.dataset_figure(points), "Maximum displacement magnitude inside each image's field of "
-                   "view; circle: full correction, triangle: through-plane residual, square: skipped "
-                   "(warp emitted); red ring: flagged.", fig_id="fig-dataset", alt="displacement by scanner"),
-            "<h2>Decisions</h2>",
-            table(["image", "site", "scanner rule", "decision", "max |d| (mm)", "isocenter from", "reason",
-                   "flags"], rows, table_id="decisions"),
-            "<h2>Flags</h2>",
-            "<p class='sub'>far off isocenter: field-of-view centre farther than the threshold from the "
-            "isocenter used; no table position: the isocenter offset was assumed; decided by default: the "
-            "scanner's correction state or the patient position came from the site policy, not the "
-            "sidecar.</p>",
-            "<ul>" + ("".join(f"<li>{escape(e.relpath)}: {escape(', '.join(e.flags))}</li>" for e in flagged)
-                      or "<li>none</li>") + "</ul>"]
+    body = [
+        f"<p class='sub'>{len(entries)} image(s), {done} with a warp; {len(flagged)} flagged.</p>",
+        "<h2>Maximum displacement by scanner</h2>",
+        figure(
+            figs.dataset_figure(points),
+            "Maximum displacement magnitude inside each image's field of "
+            "view; circle: full correction, triangle: through-plane residual, square: skipped "
+            "(warp emitted); red ring: flagged.",
+            fig_id="fig-dataset",
+            alt="displacement by scanner",
+        ),
+        "<h2>Decisions</h2>",
+        table(
+            [
+                "image",
+                "site",
+                "scanner rule",
+                "decision",
+                "max |d| (mm)",
+                "isocenter from",
+                "reason",
+                "flags",
+            ],
+            rows,
+            table_id="decisions",
+        ),
+        "<h2>Flags</h2>",
+        "<p class='sub'>far off isocenter: field-of-view centre farther than the threshold from the "
+        "isocenter used; no table position: the isocenter offset was assumed; decided by default: the "
+        "scanner's correction state or the patient position came from the site policy, not the "
+        "sidecar.</p>",
+        "<ul>"
+        + (
+            "".join(f"<li>{escape(e.relpath)}: {escape(', '.join(e.flags))}</li>" for e in flagged)
+            or "<li>none</li>"
+        )
+        + "</ul>",
+    ]
     if coil_list:
         body += ["<h2>Coil models</h2>", f"<ul>{coil_list}</ul>"]
     return page(f"Gradient-nonlinearity report: {title}", "\n".join(body))

@@ -69,8 +69,11 @@ def _stats(values: np.ndarray) -> dict:
     if values.size == 0:
         return {"voxels": 0, "max_mm": None, **{f"p{p:g}_mm": None for p in PERCENTILES}}
     pct = np.percentile(values, PERCENTILES)
-    return {"voxels": int(values.size), "max_mm": float(values.max()),
-            **{f"p{p:g}_mm": float(v) for p, v in zip(PERCENTILES, pct)}}
+    return {
+        "voxels": int(values.size),
+        "max_mm": float(values.max()),
+        **{f"p{p:g}_mm": float(v) for p, v in zip(PERCENTILES, pct, strict=True)},
+    }
 
 
 def displacement_stats(magnitude_mm: np.ndarray, mask: np.ndarray | None = None) -> dict:
@@ -92,8 +95,9 @@ def displacement_stats(magnitude_mm: np.ndarray, mask: np.ndarray | None = None)
 
 def distance_to_isocenter_mm(affine: np.ndarray, ijk: np.ndarray, isocenter_ras_mm) -> np.ndarray:
     """Distance (mm) of voxel indices (..., 3) from the isocenter (rotations keep distances)."""
-    return np.linalg.norm(index_to_ras(np.asarray(affine, float), ijk) - np.asarray(isocenter_ras_mm),
-                          axis=-1)
+    return np.linalg.norm(
+        index_to_ras(np.asarray(affine, float), ijk) - np.asarray(isocenter_ras_mm), axis=-1
+    )
 
 
 def fov_centre_ras_mm(shape: Sequence[int], affine: np.ndarray) -> np.ndarray:
@@ -111,8 +115,9 @@ def _plane_fit_residual(u: np.ndarray, v: np.ndarray, values: np.ndarray) -> flo
     return float(resid.max() - resid.min())
 
 
-def slice_profile(disp_ras_mm: np.ndarray, affine: np.ndarray, slice_axis: int,
-                  valid: np.ndarray | None = None) -> dict:
+def slice_profile(
+    disp_ras_mm: np.ndarray, affine: np.ndarray, slice_axis: int, valid: np.ndarray | None = None
+) -> dict:
     """Through-plane displacement of each slice of a 2D acquisition.
 
     Parameters
@@ -163,9 +168,18 @@ def slice_profile(disp_ras_mm: np.ndarray, affine: np.ndarray, slice_axis: int,
     u = ii * np.linalg.norm(cols[:, 0])
     v = jj * np.linalg.norm(cols[:, 1])
     origin_n = float(affine[:3, 3] @ normal)
-    rows = {k: [] for k in ("shift_mean_mm", "shift_min_mm", "shift_max_mm", "bow_mm",
-                            "thickness_change_mean_mm", "thickness_change_min_mm",
-                            "thickness_change_max_mm")}
+    rows = {
+        k: []
+        for k in (
+            "shift_mean_mm",
+            "shift_min_mm",
+            "shift_max_mm",
+            "bow_mm",
+            "thickness_change_mean_mm",
+            "thickness_change_min_mm",
+            "thickness_change_max_mm",
+        )
+    }
     for k in range(n_slices):
         sel = ok[..., k]
         vals, dt = d_n[..., k][sel], change[..., k][sel]
@@ -181,8 +195,13 @@ def slice_profile(disp_ras_mm: np.ndarray, affine: np.ndarray, slice_axis: int,
         for stat, fn in (("mean", np.mean), ("min", np.min), ("max", np.max)):
             rows[f"thickness_change_{stat}_mm"].append(float(fn(dt[finite])) if finite.any() else None)
     positions = [origin_n + k * float(affine[:3, slice_axis] @ normal) for k in range(n_slices)]
-    return {"slice_axis": int(slice_axis), "normal_ras": [float(x) for x in normal],
-            "thickness_mm": thickness, "position_mm": positions, **rows}
+    return {
+        "slice_axis": int(slice_axis),
+        "normal_ras": [float(x) for x in normal],
+        "thickness_mm": thickness,
+        "position_mm": positions,
+        **rows,
+    }
 
 
 def decided_by_default(decision: Mapping) -> bool:
@@ -215,8 +234,13 @@ def missing_table_position(decision: Mapping, summary: Mapping | None = None) ->
     return summary is not None and summary.get("isocenter_offset_from") == "default (zeros)"
 
 
-def image_flags(*, summary: Mapping | None, decision: Mapping, fov_centre_ras_mm=None,
-                far_mm: float = FAR_FROM_ISOCENTER_MM) -> list[str]:
+def image_flags(
+    *,
+    summary: Mapping | None,
+    decision: Mapping,
+    fov_centre_ras_mm=None,
+    far_mm: float = FAR_FROM_ISOCENTER_MM,
+) -> list[str]:
     """Outlier flags of one image for the dataset index.
 
     ``far off isocenter`` (field-of-view centre farther than ``far_mm`` from

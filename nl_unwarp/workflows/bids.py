@@ -19,7 +19,7 @@ def image_workflow_name(relpath: str) -> str:
 def init_bids_unwarp_wf(*, plan, output_dir: str | Path, site_config: str | Path | None = None,
                         coil_override: str | Path | None = None, jacobian: bool = True,
                         order: int = 3, emit_warp_for_skipped: bool = False,
-                        name: str = "bids_unwarp_wf"):
+                        reports: bool = True, name: str = "bids_unwarp_wf"):
     """Correct every planned image of a dataset and write the derivatives.
 
     Parameters
@@ -36,6 +36,8 @@ def init_bids_unwarp_wf(*, plan, output_dir: str | Path, site_config: str | Path
     emit_warp_for_skipped : bool
         For images the scanner corrected in 3D, still write the field and
         Jacobian map (no corrected image).
+    reports : bool
+        Write each image's HTML quality report into ``<output_dir>/reports/``.
     name : str
 
     Returns
@@ -46,6 +48,7 @@ def init_bids_unwarp_wf(*, plan, output_dir: str | Path, site_config: str | Path
     """
     from nl_unwarp.interfaces.bids import WriteDerivatives
 
+    from .diffusion import add_bids_diffusion
     from .unwarp import init_unwarp_wf
 
     workflow = pe.Workflow(name=name)
@@ -54,6 +57,9 @@ def init_bids_unwarp_wf(*, plan, output_dir: str | Path, site_config: str | Path
         if row.problem:
             raise ValueError(f"{row.relpath}: {row.problem} (call plan.raise_problems() first)")
         skipped = row.decision.action == "skip"
+        # A DWI's b-values are biased whether or not its geometry was corrected.
+        add_bids_diffusion(workflow, row, image_workflow_name(row.relpath), output_dir,
+                           site_config=site_config, coil_override=coil_override)
         if skipped and not emit_warp_for_skipped:
             continue
         label = image_workflow_name(row.relpath)
@@ -77,4 +83,20 @@ def init_bids_unwarp_wf(*, plan, output_dir: str | Path, site_config: str | Path
         if not skipped:
             fields.append("corrected")
         workflow.connect([(image_wf, sink, [(f"outputnode.{f}", f) for f in fields])])
+        if reports:
+            _connect_report(workflow, image_wf, row, label, output_dir, skipped)
     return workflow
+
+
+def _connect_report(workflow, image_wf, row, label: str, output_dir, skipped: bool) -> None:
+    """One image's quality report, put into ``<output_dir>/reports/``."""
+    from nl_unwarp.interfaces.report import ImageReport, SinkReport
+    from nl_unwarp.report.files import REPORTS_DIR, image_report_name
+
+    report = pe.Node(ImageReport(in_file=row.path, metadata=row.metadata, title=row.relpath),
+                     name=f"{label}_report")
+    put = pe.Node(SinkReport(out_path=str(Path(output_dir) / REPORTS_DIR / image_report_name(row.relpath))),
+                  name=f"{label}_report_sink", run_without_submitting=True)
+    fields = ["summary", "field", "jacobian", "decision"] + ([] if skipped else ["corrected"])
+    workflow.connect([(image_wf, report, [(f"outputnode.{f}", f) for f in fields]),
+                      (report, put, [("out_report", "in_report")])])
