@@ -57,10 +57,10 @@ def init_bids_unwarp_wf(*, plan, output_dir: str | Path, site_config: str | Path
         if row.problem:
             raise ValueError(f"{row.relpath}: {row.problem} (call plan.raise_problems() first)")
         skipped = row.decision.action == "skip"
-        # A DWI's b-values are biased whether or not its geometry was corrected.
-        add_bids_diffusion(workflow, row, image_workflow_name(row.relpath), output_dir,
-                           site_config=site_config, coil_override=coil_override)
+        dwi_options = {"site_config": site_config, "coil_override": coil_override}
         if skipped and not emit_warp_for_skipped:
+            # A DWI's b-values are biased even when the scanner corrected its geometry.
+            add_bids_diffusion(workflow, row, image_workflow_name(row.relpath), output_dir, **dwi_options)
             continue
         label = image_workflow_name(row.relpath)
         image_wf = init_unwarp_wf(resample=not skipped, jacobian=jacobian, order=order,
@@ -83,6 +83,7 @@ def init_bids_unwarp_wf(*, plan, output_dir: str | Path, site_config: str | Path
         if not skipped:
             fields.append("corrected")
         workflow.connect([(image_wf, sink, [(f"outputnode.{f}", f) for f in fields])])
+        add_bids_diffusion(workflow, row, label, output_dir, sink=sink, **dwi_options)
         if reports:
             _connect_report(workflow, image_wf, row, label, output_dir, skipped)
     return workflow
@@ -96,7 +97,7 @@ def _connect_report(workflow, image_wf, row, label: str, output_dir, skipped: bo
     report = pe.Node(ImageReport(in_file=row.path, metadata=row.metadata, title=row.relpath),
                      name=f"{label}_report")
     put = pe.Node(SinkReport(out_path=str(Path(output_dir) / REPORTS_DIR / image_report_name(row.relpath))),
-                  name=f"{label}_report_sink", run_without_submitting=True)
+                  name=f"{label}_report_put", run_without_submitting=True)
     fields = ["summary", "field", "jacobian", "decision"] + ([] if skipped else ["corrected"])
     workflow.connect([(image_wf, report, [(f"outputnode.{f}", f) for f in fields]),
                       (report, put, [("out_report", "in_report")])])
