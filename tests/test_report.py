@@ -189,13 +189,18 @@ def test_slice_profile_matches_a_field_built_by_hand(flip):
 
 def test_flags_far_off_isocenter_missing_table_and_default_decision():
     summary = {"isocenter_ras_mm": [0.0, 0.0, 40.0], "isocenter_offset_from": "table position"}
-    plain = {"action": "full", "reason": "not corrected by the scanner (NonlinearGradientCorrection=False)",
-             "warnings": []}
+    plain = {
+        "action": "full",
+        "reason": "not corrected by the scanner (NonlinearGradientCorrection=False)",
+        "warnings": [],
+    }
     assert image_flags(summary=summary, decision=plain, fov_centre_ras_mm=[0, 0, 0]) == [
-        "far off isocenter (40 mm)"]
+        "far off isocenter (40 mm)"
+    ]
     assert image_flags(summary=summary, decision=plain, fov_centre_ras_mm=[0, 0, 30]) == []
-    by_policy = dict(plain, reason="no NonlinearGradientCorrection flag and no ImageType token; "
-                                   "site policy: correct")
+    by_policy = dict(
+        plain, reason="no NonlinearGradientCorrection flag and no ImageType token; site policy: correct"
+    )
     assert decided_by_default(by_policy) and not decided_by_default(plain)
     no_table = dict(plain, warnings=["TablePosition missing: assuming the world origin is the isocenter"])
     assert missing_table_position(no_table) and not decided_by_default(no_table)
@@ -224,18 +229,35 @@ def case(demo_coil):
         affine = _grid_affine(zooms)
         frame = DeviceFrame("HFS", offset)
         warp = compute_warp(demo_coil, SHAPE, affine, frame, mode=mode)
-        summary = json.loads(json.dumps(warp_summary(warp, demo_coil, demo_coil_path(), frame,
-                                                     "table position")))
+        summary = json.loads(
+            json.dumps(warp_summary(warp, demo_coil, demo_coil_path(), frame, "table position"))
+        )
         summary.update(extra)
         raw = _sphere(SHAPE, 14.0)
-        inputs = ImageInputs("sub-01/anat/sub-01_T1w.nii.gz", raw, affine, summary, warp.disp_ras_mm,
-                             warp.jacobian, corrected=raw[::-1].copy(),
-                             decision={"action": mode, "reason": "not corrected by the scanner",
-                                       "rule": "fictive-any", "site": "northfield", "coil_model": "northfield",
-                                       "position": "HFS", "warnings": []},
-                             metadata={"MRAcquisitionType": "2D" if mode != "full" else "3D",
-                                       "NonlinearGradientCorrection": False, "TablePosition": [0, 0, -150]},
-                             coil_page_href="coil-x.html")
+        inputs = ImageInputs(
+            "sub-01/anat/sub-01_T1w.nii.gz",
+            raw,
+            affine,
+            summary,
+            warp.disp_ras_mm,
+            warp.jacobian,
+            corrected=raw[::-1].copy(),
+            decision={
+                "action": mode,
+                "reason": "not corrected by the scanner",
+                "rule": "fictive-any",
+                "site": "northfield",
+                "coil_model": "northfield",
+                "position": "HFS",
+                "warnings": [],
+            },
+            metadata={
+                "MRAcquisitionType": "2D" if mode != "full" else "3D",
+                "NonlinearGradientCorrection": False,
+                "TablePosition": [0, 0, -150],
+            },
+            coil_page_href="coil-x.html",
+        )
         return inputs, warp, summary
 
     return build
@@ -255,7 +277,9 @@ def test_image_page_numbers_equal_the_summary(case):
     for key, tol in (("jacobian_min", SHOWN_JAC_TOL), ("jacobian_max", SHOWN_JAC_TOL)):
         assert exact(warp_cells[key]) == summary[key]
         assert shown(warp_cells[key]) == pytest.approx(summary[key], abs=tol)
-    assert exact(warp_cells["displacement_max_inside_valid_mm"]) == summary["displacement_max_inside_valid_mm"]
+    assert (
+        exact(warp_cells["displacement_max_inside_valid_mm"]) == summary["displacement_max_inside_valid_mm"]
+    )
     disp = page.cells("displacement")
     # The page recomputes from the field; the summary came from the warp: the same numbers.
     assert exact(disp["image.max_mm"]) == pytest.approx(summary["displacement_max_mm"], rel=FLOAT32_RTOL)
@@ -264,8 +288,9 @@ def test_image_page_numbers_equal_the_summary(case):
     # Head mask: the sphere of the raw image, exactly (a noise-free binary image).
     sphere = _sphere(SHAPE, 14.0) > 0
     assert exact(disp["head.voxels"]) == int(sphere.sum())
-    assert exact(disp["head.max_mm"]) == pytest.approx(float(warp.magnitude_mm[sphere].max()),
-                                                       rel=FLOAT32_RTOL)
+    assert exact(disp["head.max_mm"]) == pytest.approx(
+        float(warp.magnitude_mm[sphere].max()), rel=FLOAT32_RTOL
+    )
     # No coil file path, only its hash.
     assert str(demo_coil_path()) not in html and str(demo_coil_path().parent) not in html
 
@@ -312,17 +337,34 @@ def test_2d_page_plots_and_tabulates_the_slices(case):
 
 
 def test_dwi_page_shows_the_shells_of_the_summary(case):
-    shells = [{"bval": 1000.0, "volumes": [1, 2], "median_deviation": 0.0123, "min_deviation": -0.02,
-               "max_deviation": 0.051, "min_at_ras_mm": [1.0, 2.0, 3.0], "max_at_ras_mm": [0.0, 0.0, 90.0]},
-              {"bval": 2000.0, "volumes": [3], "median_deviation": 0.0101, "min_deviation": -0.01,
-               "max_deviation": 0.049, "min_at_ras_mm": None, "max_at_ras_mm": None}]
+    shells = [
+        {
+            "bval": 1000.0,
+            "volumes": [1, 2],
+            "median_deviation": 0.0123,
+            "min_deviation": -0.02,
+            "max_deviation": 0.051,
+            "min_at_ras_mm": [1.0, 2.0, 3.0],
+            "max_at_ras_mm": [0.0, 0.0, 90.0],
+        },
+        {
+            "bval": 2000.0,
+            "volumes": [3],
+            "median_deviation": 0.0101,
+            "min_deviation": -0.01,
+            "max_deviation": 0.049,
+            "min_at_ras_mm": None,
+            "max_at_ras_mm": None,
+        },
+    ]
     inputs, _, _ = case(diffusion={"mask_voxels": 123, "shells": shells})
     cells = parse(render_image_page(inputs)).cells("shells")
     for i, shell in enumerate(shells):
         assert exact(cells[f"bval.{i}"]) == shell["bval"]
         assert exact(cells[f"median_deviation_percent.{i}"]) == shell["median_deviation"]
-        assert shown(cells[f"max_deviation_percent.{i}"]) == pytest.approx(100 * shell["max_deviation"],
-                                                                          abs=SHOWN_MM_TOL)
+        assert shown(cells[f"max_deviation_percent.{i}"]) == pytest.approx(
+            100 * shell["max_deviation"], abs=SHOWN_MM_TOL
+        )
 
 
 # --- coil model and dataset pages --------------------------------------------------------------
@@ -350,18 +392,42 @@ def test_coil_page_table_equals_the_describe_json(demo_coil, capsys):
 
 def test_dataset_page_lists_decisions_values_and_flags():
     def summary(dmax, iso_z):
-        return {"displacement_max_mm": dmax, "isocenter_ras_mm": [0.0, 0.0, iso_z],
-                "isocenter_offset_from": "table position",
-                "coil_model": {"label": "Fictive A", "sha256": "ab" * 32, "degree": 5}}
+        return {
+            "displacement_max_mm": dmax,
+            "isocenter_ras_mm": [0.0, 0.0, iso_z],
+            "isocenter_offset_from": "table position",
+            "coil_model": {"label": "Fictive A", "sha256": "ab" * 32, "degree": 5},
+        }
 
     entries = [
-        DatasetEntry("sub-01/anat/sub-01_T1w.nii.gz", {"action": "full", "reason": "flag", "rule": "a",
-                     "site": "north", "warnings": []}, summary(2.5, 0.0), [], "sub-01_T1w.html", "coil-ab.html"),
-        DatasetEntry("sub-02/anat/sub-02_T1w.nii.gz", {"action": "full", "reason": "site policy: correct",
-                     "rule": "a", "site": "north", "warnings": []}, summary(4.25, 40.0),
-                     ["far off isocenter (40 mm)", "decided by default"], None, "coil-ab.html"),
-        DatasetEntry("sub-03/anat/sub-03_T1w.nii.gz", {"action": "skip", "reason": "3D", "rule": "b",
-                     "site": "south", "warnings": []}, None, []),
+        DatasetEntry(
+            "sub-01/anat/sub-01_T1w.nii.gz",
+            {"action": "full", "reason": "flag", "rule": "a", "site": "north", "warnings": []},
+            summary(2.5, 0.0),
+            [],
+            "sub-01_T1w.html",
+            "coil-ab.html",
+        ),
+        DatasetEntry(
+            "sub-02/anat/sub-02_T1w.nii.gz",
+            {
+                "action": "full",
+                "reason": "site policy: correct",
+                "rule": "a",
+                "site": "north",
+                "warnings": [],
+            },
+            summary(4.25, 40.0),
+            ["far off isocenter (40 mm)", "decided by default"],
+            None,
+            "coil-ab.html",
+        ),
+        DatasetEntry(
+            "sub-03/anat/sub-03_T1w.nii.gz",
+            {"action": "skip", "reason": "3D", "rule": "b", "site": "south", "warnings": []},
+            None,
+            [],
+        ),
     ]
     html = render_dataset_page(entries, title="study")
     page = parse(html)
