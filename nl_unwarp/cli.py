@@ -128,6 +128,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     _add_compose_parser(sub)
     _add_report_parser(sub)
+    _add_dwi_parser(sub)
     return parser
 
 
@@ -458,6 +459,58 @@ def _cmd_report(args, progress: _Progress) -> None:
 
 
 COMMANDS["report"] = _cmd_report
+
+
+def _add_dwi_parser(sub) -> None:
+    p = sub.add_parser("dwi", help="diffusion: coil tensor, effective b-values and b-vectors of a DWI",
+                       description="Compute the gradient coil tensor L on a DWI's grid, in the frame of "
+                                   "its bvec file, and what the nonlinear gradients did to its b-table: "
+                                   "b_eff = b |L g|^2, g_eff = L g / |L g| (per voxel).")
+    p.add_argument("dwi", help="DWI series (only its header and b=0 volumes are read)")
+    p.add_argument("--bval", required=True, help="BIDS/FSL .bval file")
+    p.add_argument("--bvec", required=True, help="BIDS/FSL .bvec file (image-axes frame)")
+    p.add_argument("--coil", required=True, help="coil model file (nl_unwarp-coil JSON)")
+    p.add_argument("--mask", help="brain mask on the DWI grid (default: from the mean b=0 image)")
+    _add_frame_options(p)
+    g = p.add_argument_group("diffusion products")
+    g.add_argument("--out-tensor", help="coil tensor, NIfTI (X, Y, Z, 1, 9) with a JSON sidecar beside it")
+    g.add_argument("--out-deviation", help="b-value deviation b_eff/b - 1, one volume per shell")
+    g.add_argument("--out-summary", help="summary JSON (per shell: median and extremes in the mask)")
+    g.add_argument("--out-mean-bval", help="one effective b-table for the mask: .bval")
+    g.add_argument("--out-mean-bvec", help="one effective b-table for the mask: .bvec")
+    g.add_argument("--out-voxel-bvals", help="per-voxel b-values (X, Y, Z, N); use .nii for speed")
+    g.add_argument("--out-voxel-bvecs", help="per-voxel b-vectors (X, Y, Z, N, 3); large")
+
+
+def _cmd_dwi(args, progress: _Progress) -> None:
+    from .interfaces.diffusion import diffusion_weighting_files
+
+    if args.mode != "full":
+        raise InputError("--mode", "the diffusion weighting takes the full coil tensor; drop --mode")
+    progress.step(f"computing the coil tensor on the grid of {args.dwi}")
+    s = diffusion_weighting_files(
+        args.dwi, args.bval, args.bvec, args.coil, frame=_frame_spec(args), mask=args.mask,
+        out_tensor=args.out_tensor, out_deviation=args.out_deviation, out_summary=args.out_summary,
+        out_mean_bval=args.out_mean_bval, out_mean_bvec=args.out_mean_bvec,
+        out_voxel_bvals=args.out_voxel_bvals, out_voxel_bvecs=args.out_voxel_bvecs)
+    print(f"coil model       {s['coil_model']['label']} (sha256 {str(s['coil_model']['sha256'])[:12]})")
+    print(f"position         {s['patient_position']}; isocenter at RAS "
+          f"{', '.join(f'{v:.1f}' for v in s['isocenter_ras_mm'])} mm ({s['isocenter_offset_from']})")
+    print(f"mask             {s['mask_voxels']} voxels, {s['mask']}")
+    print("shell (s/mm2)  median dev.   min dev.   max dev.")
+    for sh in s["shells"]:
+        print(f"{sh['bval']:13.0f}  {100 * sh['median_deviation']:9.2f} %  "
+              f"{100 * sh['min_deviation']:7.2f} %  "
+              f"{100 * sh['max_deviation']:7.2f} %")
+    print(f"apparent MD      x{s['apparent_md_ratio_min']:.4f} .. x{s['apparent_md_ratio_max']:.4f} "
+          "with the nominal table (isotropic medium)")
+    for path in (args.out_tensor, args.out_deviation, args.out_summary, args.out_mean_bval,
+                 args.out_mean_bvec, args.out_voxel_bvals, args.out_voxel_bvecs):
+        if path:
+            print(f"wrote            {path}")
+
+
+COMMANDS["dwi"] = _cmd_dwi
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -39,6 +39,10 @@ _DESCRIPTIONS = {
              "of the corrected grid, the scanner's image is sampled at p + d(p).",
     "jacobian": "Jacobian determinant of the gradient-nonlinearity encoding on the corrected grid.",
     "magnitude": "Magnitude of the gradient-nonlinearity displacement, mm, on the corrected grid.",
+    "coiltensor": "Gradient coil tensor L (applied diffusion gradient per unit nominal gradient) on the "
+                  "corrected grid, in the frame of the bvec file; see NLUnwarpTensor.",
+    "bdeviation": "Relative b-value deviation b_eff / b - 1 on the corrected grid, one volume per shell "
+                  "(mean over the shell's directions); see NLUnwarpShells.",
 }
 
 
@@ -91,6 +95,11 @@ def _sidecar(kind: str, source_uri: str, metadata: Mapping, provenance: dict) ->
     doc.update({"SkullStripped": False, "Sources": [source_uri], "Description": _DESCRIPTIONS[kind],
                 PROVENANCE_KEY: provenance})
     return doc
+
+
+def sidecar_document(kind: str, source_relpath: str, metadata: Mapping, provenance: dict) -> dict:
+    """The sidecar of one derivative file, for files made elsewhere and passed as companions."""
+    return _sidecar(kind, f"bids:{DATASET_LINK}:{source_relpath}", metadata, provenance)
 
 
 def write_image_derivatives(

@@ -11,6 +11,8 @@ corrected image           ``<entities>_desc-gnc_<suffix>.nii.gz``
 displacement field (ITK)  ``<entities>_from-<suffix>orig_to-<suffix>gnc_mode-image_xfm.nii.gz``
 Jacobian determinant      ``<entities>_desc-gncjacobian_<suffix>.nii.gz``
 displacement magnitude    ``<entities>_desc-gncdisplacement_<suffix>.nii.gz``
+coil tensor (dwi)         ``<entities>_desc-gnccoiltensor_<suffix>.nii.gz``
+b-value deviation (dwi)   ``<entities>_desc-gncbdeviation_<suffix>.nii.gz``
 ========================  ===================================================
 
 ``orig`` is the grid as the scanner reconstructed it, ``gnc`` the corrected one.
@@ -31,6 +33,8 @@ KINDS = {
     "field": "{prefix}_from-{suffix}orig_to-{suffix}" + DESC + "_mode-image_xfm{ext}",
     "jacobian": "{prefix}_desc-" + DESC + "jacobian_{suffix}{ext}",
     "magnitude": "{prefix}_desc-" + DESC + "displacement_{suffix}{ext}",
+    "coiltensor": "{prefix}_desc-" + DESC + "coiltensor_{suffix}{ext}",
+    "bdeviation": "{prefix}_desc-" + DESC + "bdeviation_{suffix}{ext}",
 }
 _NAME = re.compile(r"^(?P<prefix>sub-[A-Za-z0-9]+(?:_[a-z]+-[A-Za-z0-9]+)*)_(?P<suffix>[A-Za-z0-9]+)"
                    r"(?P<ext>(?:\.[A-Za-z0-9]+)+)$")
