@@ -92,7 +92,7 @@ class CoilModel:
     source: dict = field(default_factory=dict)
 
     @classmethod
-    def ideal(cls, **kwargs) -> "CoilModel":
+    def ideal(cls, **kwargs) -> CoilModel:
         """A perfectly linear gradient system (the identity warp)."""
         return cls({a: ideal_axis(a, **kwargs) for a in AXES}, label="ideal linear")
 

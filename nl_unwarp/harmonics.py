@@ -294,7 +294,7 @@ def expansion(
     # Skip orders without coefficients (gradient coils use few of them).
     used = np.nonzero((alpha != 0) | (beta != 0))
     orders: dict[int, int] = {}
-    for n, m in zip(*used):
+    for n, m in zip(*used, strict=True):
         orders[int(m)] = max(orders.get(int(m), 0), int(n))
     for n, m, c, s, dc, ds in iter_harmonics(pts, degree, gradient=gradient, orders=orders):
         a, b = alpha[n, m], beta[n, m]

@@ -152,7 +152,8 @@ def marker_centroids(image: np.ndarray, affine: np.ndarray, expected_ras_mm: np.
         if np.any(hi <= lo):
             continue
         block = image[lo[0]:hi[0], lo[1]:hi[1], lo[2]:hi[2]] - background
-        idx = np.stack(np.meshgrid(*[np.arange(a, b) for a, b in zip(lo, hi)], indexing="ij"), -1)
+        ranges = [np.arange(a, b) for a, b in zip(lo, hi, strict=True)]
+        idx = np.stack(np.meshgrid(*ranges, indexing="ij"), -1)
         pts = idx @ affine[:3, :3].T + affine[:3, 3]
         w = np.clip(block, 0.0, None) * (np.linalg.norm(pts - centre, axis=-1) <= window_mm)
         if w.sum() > 0:

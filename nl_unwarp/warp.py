@@ -159,8 +159,8 @@ def lattice(shape, zooms, lattice_mm):
     Nodes sit at voxel indices ``(j - 1) * step`` for ``j = 0..M-1``, one node
     before the grid and two after it, as four-point upsampling needs.
     """
-    steps = [max(1, int(lattice_mm // z)) if n > 1 else 1 for n, z in zip(shape, zooms)]
-    nodes = [(np.arange((n - 1) // s + 4) - 1) * s for n, s in zip(shape, steps)]
+    steps = [max(1, int(lattice_mm // z)) if n > 1 else 1 for n, z in zip(shape, zooms, strict=True)]
+    nodes = [(np.arange((n - 1) // s + 4) - 1) * s for n, s in zip(shape, steps, strict=True)]
     return steps, nodes
 
 

@@ -71,7 +71,7 @@ class OutputSet:
         self._pending = []
         self._made_dirs = []
 
-    def __enter__(self) -> "OutputSet":
+    def __enter__(self) -> OutputSet:
         return self
 
     def __exit__(self, exc_type, exc, tb) -> None:

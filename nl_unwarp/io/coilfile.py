@@ -221,7 +221,7 @@ def model_to_document(model: CoilModel) -> dict:
         rows = {}
         for kind, table in (("cos", ax.alpha), ("sin", ax.beta)):
             n_idx, m_idx = np.nonzero(table)
-            rows[kind] = [[int(n), int(m), float(table[n, m])] for n, m in zip(n_idx, m_idx)]
+            rows[kind] = [[int(n), int(m), float(table[n, m])] for n, m in zip(n_idx, m_idx, strict=True)]
         axes[name] = {
             "normalisation": "schmidt",
             "condon_shortley": False,
@@ -331,7 +331,9 @@ def import_table(
             axis, kind_ = row["axis"].lower(), row["kind"].lower()
             entry = [int(row["degree"]), int(row["order"]), float(row["value"]) * scale]
         except ValueError:
-            raise InputError(src, f"line {line_no}: degree and order must be integers, value a number") from None
+            raise InputError(
+                src, f"line {line_no}: degree and order must be integers, value a number"
+            ) from None
         if axis not in axes or kind_ not in ("cos", "sin"):
             raise InputError(src, f"line {line_no}: axis must be x, y or z and kind cos or sin")
         axes[axis][kind_].append(entry)
