@@ -58,7 +58,9 @@ class Plane:
     letters: str
 
     def take(self, volume: np.ndarray) -> np.ndarray:
-        sl = np.take(volume, self.index, axis=self.normal)
+        # Basic indexing gives a view: only the shown pixels are copied (np.take
+        # would copy the slice of a whole, perhaps Fortran-ordered, volume).
+        sl = volume[(slice(None),) * self.normal + (self.index,)]
         rest = [a for a in range(3) if a != self.normal]
         if rest.index(self.v_axis) != 0:
             sl = np.swapaxes(sl, 0, 1)
@@ -66,7 +68,7 @@ class Plane:
             sl = sl[::-1]
         if self.h_flip:
             sl = sl[:, ::-1]
-        return sl[:: self.stride, :: self.stride]
+        return np.ascontiguousarray(sl[:: self.stride, :: self.stride])
 
     def ijk(self, shape: Sequence[int]) -> np.ndarray:
         """Voxel indices (rows, cols, 3) of the shown pixels."""
@@ -115,9 +117,21 @@ def _png(fig: Figure) -> bytes:
 
 
 def _axes_row(n: int, *, height: float = 3.6, colorbar: bool = True):
-    fig = Figure(figsize=(3.7 * n + (0.9 if colorbar else 0), height), layout="constrained")
+    """A row of ``n`` image axes with a fixed layout (constrained layout costs a second draw)."""
+    bar_in = 0.9 if colorbar else 0.0
+    width = 3.7 * n + bar_in
+    fig = Figure(figsize=(width, height))
+    right = 1 - (bar_in + 0.05) / width
+    fig.subplots_adjust(left=0.01, right=right, bottom=0.02, top=0.9, wspace=0.04)
     axes = fig.subplots(1, n, squeeze=False)[0]
     return fig, axes
+
+
+def _colorbar(fig: Figure, image, label: str) -> None:
+    """A colour bar in the space :func:`_axes_row` keeps on the right."""
+    width = fig.get_figwidth()
+    cax = fig.add_axes((1 - 0.75 / width, 0.12, 0.14 / width, 0.7))
+    fig.colorbar(image, cax=cax, label=label)
 
 
 def _decorate(ax, plane: Plane, shown: np.ndarray) -> None:
@@ -234,7 +248,7 @@ def magnitude_figure(views: VolumeViews, magnitude_mm: np.ndarray, vmax_mm: floa
             ax.clabel(cs, fontsize=7, fmt="%g")
         drawn |= _radius(ax, plane, dist, views.valid_radius_mm)
         _decorate(ax, plane, anat)
-    fig.colorbar(im, ax=list(axes), label="|displacement| (mm)", shrink=0.85)
+    _colorbar(fig, im, "|displacement| (mm)")
     return _png(fig), drawn
 
 
@@ -298,6 +312,7 @@ def before_after_figures(
             ax.set_ylim(y0, y1)
             _radius(ax, plane, dist, views.valid_radius_mm)
             _decorate(ax, plane, shown)
+        fig.subplots_adjust(top=0.84)
         fig.suptitle(
             "before: raw image, true grid as encoded" if bent else "after: corrected image, true grid",
             fontsize=10,
@@ -324,7 +339,7 @@ def jacobian_figure(views: VolumeViews, jacobian: np.ndarray, jac_range: tuple[f
         )
         _radius(ax, plane, dist, views.valid_radius_mm)
         _decorate(ax, plane, shown)
-    fig.colorbar(im, ax=list(axes), label="Jacobian determinant", shrink=0.85)
+    _colorbar(fig, im, "Jacobian determinant")
     return _png(fig)
 
 
@@ -412,6 +427,8 @@ def coil_planes_figure(coil, *, points: int = 121) -> bytes:
     t = np.linspace(-reach, reach, points)
     a, b = np.meshgrid(t, t)
     fig, axes = _axes_row(3, height=3.9)
+    # Room for the axis labels in mm.
+    fig.subplots_adjust(left=0.07, bottom=0.13, wspace=0.32)
     maps = []
     for fixed, (i, j) in ((2, (0, 1)), (1, (0, 2)), (0, (1, 2))):
         pts = np.zeros(a.shape + (3,))
@@ -433,7 +450,7 @@ def coil_planes_figure(coil, *, points: int = 121) -> bytes:
         ax.set_title(f"device {'xyz'[i]}{'xyz'[j]} plane ({'xyz'[fixed]} = 0)", fontsize=9)
         ax.set_xlabel(f"{'xyz'[i]} (mm)")
         ax.set_ylabel(f"{'xyz'[j]} (mm)")
-    fig.colorbar(im, ax=list(axes), label="|displacement| (mm)", shrink=0.85)
+    _colorbar(fig, im, "|displacement| (mm)")
     return _png(fig)
 
 
