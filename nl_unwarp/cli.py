@@ -270,6 +270,7 @@ def _cmd_demo(args, progress: _Progress) -> None:
         print("\nmulti-site BIDS pipeline: FICTIONAL sites, scanners and subjects")
         _print_run_rows(rows)
         print(f"derivatives in {Path(args.outdir) / 'bids_demo' / 'derivatives'}")
+        print(f"report         {Path(args.outdir) / 'bids_demo' / 'derivatives' / 'reports' / 'index.html'}")
     print(CAUTION)
 
 
@@ -382,6 +383,7 @@ def _cmd_bids_app(args, progress: _Progress) -> None:
     progress.step(f"running {len(plan.rows)} image(s) with the {options.plugin} plugin")
     rows, failures = run(options, plan=plan)
     _print_run_rows(rows)
+    print(f"report           {Path(args.output_dir) / 'reports' / 'index.html'}")
     if failures:
         raise InputError(args.output_dir, f"{len(failures)} step(s) crashed (first: {failures[0]}); "
                                           "finished derivatives were kept: re-run the same command "
