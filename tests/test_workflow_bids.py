@@ -120,7 +120,8 @@ def test_crash_leaves_nothing_half_written_and_rerun_completes(study, tmp_path, 
     rows, failures = run(_options(study, tmp_path))
     assert len(failures) == 1
     out = tmp_path / "derivatives"
-    dwi_files = list(out.rglob("sub-01_ses-1_*dwi*"))
+    # The derivatives tree, not reports/: a report page is not a derivative of the image.
+    dwi_files = list((out / "sub-01").rglob("sub-01_ses-1_*dwi*"))
     assert dwi_files == []  # none of the dwi's derivatives, not even the ones copied before the crash
     assert list(out.rglob(".*partial*")) == []
     assert (out / derivative_name(T1W, "corrected")).exists()  # the others are complete
