@@ -182,7 +182,7 @@ def _write_warp(outputs: OutputSet, warp: WarpField, paths: WarpOutputs, summary
         field = warp if field is None else field
         write_itk_field(outputs, paths.field, field.disp_ras_mm, field.affine)
     if paths.jacobian:
-        write_image(outputs, paths.jacobian, np.ascontiguousarray(warp.jacobian), warp.affine)
+        write_image(outputs, paths.jacobian, warp.jacobian, warp.affine)
     if paths.magnitude:
         write_image(outputs, paths.magnitude, warp.magnitude_mm.astype(np.float32), warp.affine)
     if paths.mask:
