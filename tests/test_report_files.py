@@ -11,7 +11,7 @@ import matplotlib.image
 import numpy as np
 import pytest
 from bidsgen import MOVED_T1W, T2W_2D, configure_nipype, make_study
-from test_report import check_png, check_self_contained, exact, parse
+from test_report import FLOAT32_RTOL, SHOWN_MM_TOL, check_png, check_self_contained, exact, parse
 
 from nl_unwarp.api import FrameSpec, WarpOutputs, correct_file
 from nl_unwarp.bids.names import derivative_name
@@ -22,6 +22,8 @@ from nl_unwarp.io.coilfile import coil_sha256
 from nl_unwarp.io.nifti import write_image
 
 SHAPE, VOXEL_MM = (32, 32, 24), 6.0
+#: A Jacobian determinant near 1 stored as float32: a few float32 epsilons (1.2e-7).
+JAC_FLOAT32_TOL = 1e-6
 #: Browser screenshot size (pixels); the page must lay out in it.
 WINDOW = (1280, 2400)
 #: Seconds a headless browser may take to render one local page (2 shared cores).
@@ -37,7 +39,7 @@ def corrected(tmp_path):
     raw = (np.linalg.norm(ijk - (np.asarray(SHAPE) - 1) / 2, axis=-1) < 10).astype(np.float32) * 100
     with OutputSet() as out:
         write_image(out, tmp_path / "raw.nii.gz", raw, affine)
-    paths = {k: tmp_path / f"{k}.nii.gz" for k in ("field", "jacobian")}
+    paths = {k: tmp_path / f"{k}.nii.gz" for k in ("field", "jacobian", "magnitude")}
     summary = correct_file(
         tmp_path / "raw.nii.gz",
         demo_coil_path(),
@@ -81,6 +83,62 @@ def test_interface_writes_the_page_and_the_sink_puts_it_in_place(corrected, tmp_
     target.unlink()
     wf.run(plugin="Linear")
     assert target.read_text(encoding="utf-8") == html
+
+
+def test_page_without_the_field_file_shows_the_same_numbers_and_planes(corrected, tmp_path):
+    """Magnitude map + coil file: the field and Jacobian files are not read, the page is the same."""
+    import SimpleITK as sitk
+
+    from nl_unwarp.io.nifti import load_image
+    from nl_unwarp.report.figures import orthogonal_planes
+    from nl_unwarp.report.files import _coil_maps, write_image_report
+
+    folder, summary = corrected
+    common = {
+        "raw_file": folder / "raw.nii.gz",
+        "summary": summary,
+        "field_file": folder / "field.nii.gz",
+        "jacobian_file": folder / "jacobian.nii.gz",
+        "corrected_file": folder / "corrected.nii.gz",
+    }
+    write_image_report(tmp_path / "field.html", **common)
+    # A field file that is not a field: the page must not read it.
+    (tmp_path / "not-a-field.nii.gz").write_bytes(b"not read")
+    not_read = tmp_path / "not-a-field.nii.gz"
+    fast = dict(common, field_file=not_read, jacobian_file=not_read)
+    write_image_report(
+        tmp_path / "fast.html", **fast, magnitude_file=folder / "magnitude.nii.gz", coil_file=demo_coil_path()
+    )
+    slow, quick = (parse((tmp_path / f"{n}.html").read_text(encoding="utf-8")) for n in ("field", "fast"))
+    for table_id in ("displacement", "warp", "identity"):
+        got, want = quick.cells(table_id), slow.cells(table_id)
+        assert got.keys() == want.keys()
+        for key, cell in want.items():
+            if cell["value"] is None:
+                assert got[key]["text"] == cell["text"], key
+            elif isinstance(exact(cell), float):
+                # The pipeline's magnitude map against |field| computed here, both float32.
+                assert exact(got[key]) == pytest.approx(exact(cell), rel=FLOAT32_RTOL), key
+            else:
+                assert exact(got[key]) == exact(cell), key
+    for fig in ("fig-magnitude", "fig-before", "fig-after", "fig-jacobian"):
+        check_png(quick.images[fig])
+    # The coil-model values on the shown planes equal the field file as SimpleITK reads it (LPS
+    # vectors, ITK convention: RAS = LPS with x and y negated), within the warp lattice's error.
+    raw = load_image(folder / "raw.nii.gz")
+    disp_at, jac_at = _coil_maps(demo_coil_path(), summary, raw.affine)
+    field_lps = sitk.GetArrayFromImage(sitk.ReadImage(str(folder / "field.nii.gz"))).transpose(2, 1, 0, 3)
+    field_ras = field_lps * np.array([-1.0, -1.0, 1.0])
+    jac_file = np.asarray(load_image(folder / "jacobian.nii.gz").data)
+    for plane in orthogonal_planes(raw.data.shape, raw.affine):
+        got = plane.values(disp_at, raw.data.shape)
+        assert np.abs(got - plane.take(field_ras)).max() <= summary["interpolation_error_mm"] + SHOWN_MM_TOL
+        got_jac = plane.values(jac_at, raw.data.shape)
+        assert np.abs(got_jac - plane.take(jac_file)).max() <= (
+            summary["jacobian_interpolation_error"] + JAC_FLOAT32_TOL
+        )
+    # Another coil's file (a different SHA-256) is not used: the page reads the field again.
+    assert _coil_maps(folder / "summary.json", summary, raw.affine) is None
 
 
 def test_correct_with_report_prints_where_it_is(corrected, tmp_path, capsys):

@@ -22,6 +22,11 @@ class _ImageReportInputSpec(BaseInterfaceInputSpec):
     field = File(exists=True, mandatory=True, desc="ITK displacement field (from MakeWarp)")
     jacobian = File(exists=True, desc="Jacobian determinant map (from MakeWarp)")
     corrected = File(exists=True, desc="corrected image, for the before/after comparison")
+    magnitude = File(exists=True, desc="displacement magnitude map (from MakeWarp)")
+    coil_file = File(
+        exists=True,
+        desc="coil model file: with magnitude and jacobian, a 3D page is made without reading the field",
+    )
     decision = traits.Dict(desc="decision record (from DecideCorrection)")
     metadata = traits.Dict(desc="the image's sidecar metadata (the keys the decision read are shown)")
     title = traits.Str(desc="name shown on the page (default: the raw file's name)")
@@ -65,6 +70,8 @@ class ImageReport(SimpleInterface):
             field_file=self.inputs.field,
             jacobian_file=given("jacobian"),
             corrected_file=given("corrected"),
+            magnitude_file=given("magnitude"),
+            coil_file=given("coil_file"),
             decision=given("decision"),
             metadata=given("metadata"),
             title=given("title"),

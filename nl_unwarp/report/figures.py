@@ -70,6 +70,10 @@ class Plane:
             sl = sl[:, ::-1]
         return np.ascontiguousarray(sl[:: self.stride, :: self.stride])
 
+    def values(self, volume, shape: Sequence[int] | None = None) -> np.ndarray:
+        """``take(volume)``; or, for a function of voxel indices (..., 3), its values on the shown pixels."""
+        return volume(self.ijk(shape)) if callable(volume) else self.take(volume)
+
     def ijk(self, shape: Sequence[int]) -> np.ndarray:
         """Voxel indices (rows, cols, 3) of the shown pixels."""
         grids = np.meshgrid(*[np.arange(n) for n in shape[:3]], indexing="ij", sparse=True)
@@ -83,9 +87,14 @@ class Plane:
     def pixel_mm(self) -> tuple[float, float]:
         return self.zooms[self.h_axis] * self.stride, self.zooms[self.v_axis] * self.stride
 
-    def offsets_mm(self, disp_ras_mm: np.ndarray, affine: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """In-plane components (horizontal, vertical; shown mm) of a RAS displacement on the plane."""
-        shown = self.take(disp_ras_mm)
+    def offsets_mm(self, disp_ras_mm, affine: np.ndarray, shape=None) -> tuple[np.ndarray, np.ndarray]:
+        """In-plane components (horizontal, vertical; shown mm) of a RAS displacement on the plane.
+
+        ``disp_ras_mm`` is the (X, Y, Z, 3) displacement, or a function from
+        voxel indices (..., 3) to the RAS displacement there (mm), evaluated
+        on the shown pixels only (then ``shape``, the grid's, is needed).
+        """
+        shown = self.values(disp_ras_mm, shape)
         dijk = shown @ np.linalg.inv(np.asarray(affine, float)[:3, :3]).T
         dh = dijk[..., self.h_axis] * self.zooms[self.h_axis] * (-1 if self.h_flip else 1)
         dv = dijk[..., self.v_axis] * self.zooms[self.v_axis] * (-1 if self.v_flip else 1)
@@ -287,13 +296,15 @@ def before_after_figures(
     views: VolumeViews,
     raw: np.ndarray,
     corrected: np.ndarray | None,
-    disp_ras_mm: np.ndarray,
+    disp_ras_mm,
     affine: np.ndarray,
 ) -> tuple[bytes, bytes | None]:
     """The raw image with the true grid as the scanner bent it, and the corrected image with it straight.
 
     A grid line drawn at true positions :math:`p` appears in the raw image at
     :math:`p + d(p)` (in-plane part shown); after correction it is straight again.
+    ``disp_ras_mm``: the (X, Y, Z, 3) displacement (RAS mm) or a function of
+    voxel indices (see :meth:`Plane.offsets_mm`).
     """
     pngs = []
     for image, bent in ((raw, True), (corrected, False)):
@@ -304,7 +315,7 @@ def before_after_figures(
         for ax, plane, dist in zip(axes, views.planes, views.distance_mm, strict=True):
             shown = plane.take(image)
             _anatomy(ax, plane, shown, views.window)
-            offsets = plane.offsets_mm(disp_ras_mm, affine) if bent else None
+            offsets = plane.offsets_mm(disp_ras_mm, affine, raw.shape[:3]) if bent else None
             for h, v in _grid_lines(plane, shown, offsets):
                 ax.plot(h, v, color="#39d353", linewidth=0.8, alpha=0.9)
             x0, x1, y0, y1 = plane.extent_mm(shown)
@@ -321,14 +332,20 @@ def before_after_figures(
     return pngs[0], pngs[1]
 
 
-def jacobian_figure(views: VolumeViews, jacobian: np.ndarray, jac_range: tuple[float, float]) -> bytes:
-    """Jacobian determinant on the three planes, diverging about 1 over the image's range."""
+def jacobian_figure(
+    views: VolumeViews, jacobian, jac_range: tuple[float, float], shape: Sequence[int] | None = None
+) -> bytes:
+    """Jacobian determinant on the three planes, diverging about 1 over the image's range.
+
+    ``jacobian``: the (X, Y, Z) map, or a function of voxel indices (then
+    ``shape``, the grid's, is needed; see :meth:`Plane.values`).
+    """
     fig, axes = _axes_row(len(views.planes))
     spread = max(abs(jac_range[0] - 1), abs(jac_range[1] - 1), 1e-4)
     norm = TwoSlopeNorm(vcenter=1.0, vmin=1 - spread, vmax=1 + spread)
     im = None
     for ax, plane, dist in zip(axes, views.planes, views.distance_mm, strict=True):
-        shown = plane.take(jacobian)
+        shown = plane.values(jacobian, shape)
         im = ax.imshow(
             shown,
             cmap="RdBu_r",

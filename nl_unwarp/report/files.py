@@ -6,6 +6,7 @@ Pages are written complete-or-nothing (:class:`~nl_unwarp.io.atomic.OutputSet`).
 from __future__ import annotations
 
 import json
+import os
 from collections.abc import Mapping
 from pathlib import Path
 
@@ -80,6 +81,65 @@ def _load(path) -> tuple[np.ndarray, np.ndarray]:
     return img.data, img.affine
 
 
+#: Files read at once: inflating gzip releases the GIL, so reading the
+#: images in threads uses the cores there are (a report reads four or five).
+READ_THREADS = 4
+
+
+def _read_all(paths: Mapping[str, str | Path | None]) -> dict:
+    """Each given file's (data, affine), read in threads; None for a missing one."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    given = {k: v for k, v in paths.items() if v is not None}
+    workers = max(1, min(READ_THREADS, len(given), os.cpu_count() or 1))
+    with ThreadPoolExecutor(workers) as pool:
+        futures = {k: pool.submit(_load, v) for k, v in given.items()}
+        return {k: futures[k].result() if k in futures else None for k in paths}
+
+
+def _is_2d(summary: Mapping, metadata: Mapping | None) -> bool:
+    return (
+        summary.get("mode") in ("inplane", "throughplane")
+        or (metadata or {}).get("MRAcquisitionType") == "2D"
+    )
+
+
+def _coil_maps(coil_file, summary: Mapping, affine: np.ndarray):
+    """Functions from voxel indices to the RAS displacement (mm) and the Jacobian determinant, from the coil.
+
+    As :mod:`nl_unwarp.warp` computes them for a full correction, evaluated
+    exactly (no lattice) where they are asked for. None unless the coil file is
+    the one the summary names (same SHA-256) and the mode is ``full`` (the
+    others project the displacement).
+    """
+    from ..frames import DeviceFrame
+    from ..io.coilfile import coil_sha256, load_coil
+    from ..warp import index_to_ras
+
+    if coil_file is None or summary.get("mode", "full") != "full":
+        return None
+    if coil_sha256(coil_file) != summary["coil_model"].get("sha256"):
+        return None
+    coil = load_coil(coil_file)
+    frame = DeviceFrame(summary["patient_position"], summary["isocenter_offset_mm"])
+    affine = np.asarray(affine, float)
+
+    def device(ijk: np.ndarray) -> np.ndarray:
+        return frame.to_device(index_to_ras(affine, np.asarray(ijk, float)))
+
+    def disp_at(ijk: np.ndarray) -> np.ndarray:
+        # d_ras = Q (u(r) - r), r the voxel's device position.
+        r_dev = device(ijk)
+        return frame.vectors_to_ras(coil.displacement(r_dev)).astype(np.float32)
+
+    def jac_at(ijk: np.ndarray) -> np.ndarray:
+        # det(Q J Q^T) = det(J): a rotation keeps the determinant.
+        _, jac = coil.encode(device(ijk))
+        return np.linalg.det(jac).astype(np.float32)
+
+    return disp_at, jac_at
+
+
 def write_image_report(
     out_html: str | Path,
     *,
@@ -88,6 +148,8 @@ def write_image_report(
     field_file: str | Path,
     jacobian_file: str | Path | None = None,
     corrected_file: str | Path | None = None,
+    magnitude_file: str | Path | None = None,
+    coil_file: str | Path | None = None,
     decision: Mapping | None = None,
     metadata: Mapping | None = None,
     title: str | None = None,
@@ -109,6 +171,18 @@ def write_image_report(
         determinant of the field's finite-difference Jacobian (less exact).
     corrected_file : path, optional
         The corrected image, for the before/after comparison.
+    magnitude_file, coil_file : path, optional
+        The displacement magnitude map (on the image grid) and the coil model
+        file. With both, a full (3D) correction and the coil the summary names
+        (same SHA-256), neither the field nor the Jacobian map is read: the
+        displacement statistics and map come from the magnitude map, the
+        Jacobian range from the summary, and the grid overlay's in-plane
+        displacement and the Jacobian map's three planes are evaluated from
+        the coil model on the shown pixels only (they differ from the files by
+        at most the summary's ``interpolation_error_mm`` and
+        ``jacobian_interpolation_error``, the lattice's). Inflating the gzip
+        files is most of the time of a report, the three-component field
+        above all.
     decision, metadata : mapping, optional
         Decision record and the sidecar it read.
     title : str, optional
@@ -118,13 +192,34 @@ def write_image_report(
     """
     if not isinstance(summary, Mapping):
         summary = json.loads(Path(summary).read_text(encoding="utf-8"))
-    raw, affine = _load(raw_file)
-    disp = _field_on_grid(field_file, raw.shape, affine)
-    if jacobian_file is not None:
-        jac = np.asarray(_load(jacobian_file)[0], dtype=np.float32)
-    else:
-        jac = _finite_difference_jacobian(disp, affine)
-    corrected = _load(corrected_file)[0] if corrected_file is not None else None
+    maps = None
+    if magnitude_file is not None and not _is_2d(summary, metadata):
+        maps = _coil_maps(coil_file, summary, _header_affine(raw_file))
+    files = {
+        "raw": raw_file,
+        "corrected": corrected_file,
+        "magnitude": magnitude_file if maps is not None else None,
+        "jacobian": jacobian_file if maps is None else None,
+    }
+    read = _read_all(files)
+    raw, affine = read["raw"]
+    magnitude, jac_range = None, None
+    if maps is not None:
+        magnitude, mag_affine = read["magnitude"]
+        if magnitude.shape[:3] == raw.shape[:3] and np.allclose(mag_affine, affine, atol=1e-4):
+            disp, jac = maps
+            jac_range = (summary["jacobian_min"], summary["jacobian_max"])
+        else:  # not on the image grid: read the field and the Jacobian map
+            maps, magnitude = None, None
+            if jacobian_file is not None:
+                read["jacobian"] = _load(jacobian_file)
+    if maps is None:
+        disp = _field_on_grid(field_file, raw.shape, affine)
+        if jacobian_file is not None:
+            jac = np.asarray(read["jacobian"][0], dtype=np.float32)
+        else:
+            jac = _finite_difference_jacobian(disp, affine)
+    corrected = read["corrected"][0] if corrected_file is not None else None
     href = coil_page_href or coil_page_name(summary["coil_model"].get("sha256"))
     inputs = ImageInputs(
         title or Path(raw_file).name,
@@ -137,8 +232,17 @@ def write_image_report(
         dict(decision) if decision else None,
         dict(metadata) if metadata else None,
         href,
+        magnitude_mm=magnitude,
+        jacobian_range=jac_range,
     )
     return write_page(out_html, render_image_page(inputs))
+
+
+def _header_affine(path: str | Path) -> np.ndarray:
+    """A NIfTI file's affine, from its header only."""
+    import nibabel as nib
+
+    return np.asarray(nib.load(str(path)).affine, float)
 
 
 def _finite_difference_jacobian(disp: np.ndarray, affine: np.ndarray) -> np.ndarray:
@@ -256,6 +360,7 @@ def write_correction_report(
     jacobian_file: str | Path | None = None,
     corrected_file: str | Path | None = None,
     coil_file: str | Path | None = None,
+    magnitude_file: str | Path | None = None,
 ) -> list[Path]:
     """The page of one correction, and its coil model's page beside it (when the coil file is given).
 
@@ -275,6 +380,8 @@ def write_correction_report(
             field_file=field_file,
             jacobian_file=jacobian_file,
             corrected_file=corrected_file,
+            magnitude_file=magnitude_file,
+            coil_file=coil_file,
         )
     ]
     coil_name = coil_page_name(summary["coil_model"].get("sha256"))

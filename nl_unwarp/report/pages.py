@@ -5,7 +5,7 @@ Nothing here reads or writes files (see :mod:`nl_unwarp.report.files`).
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from html import escape
 
@@ -62,28 +62,48 @@ class ImageInputs:
     affine : (4, 4) ndarray
     summary : dict
         The warp summary (:func:`nl_unwarp.api.warp_summary`).
-    disp_ras_mm : (X, Y, Z, 3) ndarray
-        The displacement on the raw grid, RAS mm.
-    jacobian : (X, Y, Z) ndarray
+    disp_ras_mm : (X, Y, Z, 3) ndarray or callable
+        The displacement on the raw grid, RAS mm; or a function from voxel
+        indices (..., 3) to it, evaluated only where a figure needs it (the
+        grid overlay's planes; the whole grid for a 2D acquisition's slice
+        profile). A function needs ``magnitude_mm``.
+    jacobian : (X, Y, Z) ndarray or callable
+        The Jacobian determinant map; or a function of voxel indices
+        (evaluated on the shown planes; needs ``jacobian_range``).
     corrected : ndarray, optional
         The corrected image (absent when the image was not resampled).
     decision : dict, optional
         The decision record (:meth:`nl_unwarp.bids.decisions.Decision.as_record`).
     metadata : dict, optional
         The sidecar metadata the decision read.
+    magnitude_mm : (X, Y, Z) ndarray, optional
+        The displacement magnitude map (default: from ``disp_ras_mm``).
+    jacobian_range : (float, float), optional
+        Minimum and maximum of the Jacobian determinant in the image
+        (default: of ``jacobian``).
     """
 
     title: str
     raw: np.ndarray
     affine: np.ndarray
     summary: dict
-    disp_ras_mm: np.ndarray
-    jacobian: np.ndarray
+    disp_ras_mm: np.ndarray | Callable[[np.ndarray], np.ndarray]
+    jacobian: np.ndarray | Callable[[np.ndarray], np.ndarray]
     corrected: np.ndarray | None = None
     decision: dict | None = None
     metadata: dict | None = None
     coil_page_href: str | None = None
     extra: dict = field(default_factory=dict)
+    magnitude_mm: np.ndarray | None = None
+    jacobian_range: tuple[float, float] | None = None
+
+    def displacement_grid(self) -> np.ndarray:
+        """The (X, Y, Z, 3) displacement, evaluated on the whole grid if given as a function."""
+        if not callable(self.disp_ras_mm):
+            return self.disp_ras_mm
+        shape = _first_volume(self.raw).shape
+        ijk = np.stack(np.meshgrid(*[np.arange(n) for n in shape], indexing="ij"), -1).astype(float)
+        return np.asarray(self.disp_ras_mm(ijk))
 
 
 def _first_volume(data: np.ndarray) -> np.ndarray:
@@ -202,7 +222,7 @@ def _slice_section(inputs: ImageInputs, valid: np.ndarray) -> str:
 
     axis = inputs.summary.get("slice_axis")
     axis = default_slice_axis(inputs.affine) if axis is None else int(axis)
-    prof = slice_profile(inputs.disp_ras_mm, inputs.affine, axis, valid)
+    prof = slice_profile(inputs.displacement_grid(), inputs.affine, axis, valid)
     inputs.extra["slice_profile"] = prof
     rows = []
     for k, pos in enumerate(prof["position_mm"]):
@@ -311,7 +331,11 @@ def render_image_page(inputs: ImageInputs) -> str:
     s = inputs.summary
     anatomy = _first_volume(inputs.raw).astype(np.float32, copy=False)
     corrected = None if inputs.corrected is None else _first_volume(inputs.corrected)
-    mag = np.sqrt(np.einsum("...i,...i->...", inputs.disp_ras_mm, inputs.disp_ras_mm))
+    if inputs.magnitude_mm is not None:
+        mag = np.asarray(inputs.magnitude_mm, dtype=np.float32)
+    else:
+        disp = inputs.displacement_grid()
+        mag = np.sqrt(np.einsum("...i,...i->...", disp, disp))
     mask = head_mask(anatomy)
     stats = displacement_stats(mag, mask)
     inputs.extra["displacement"] = stats
@@ -365,11 +389,14 @@ def render_image_page(inputs: ImageInputs) -> str:
             "with the grid the warp would straighten.</p>"
         )
         body.append(figure(before, cap, fig_id="fig-before", alt="raw"))
-    jrange = (float(inputs.jacobian.min()), float(inputs.jacobian.max()))
+    if inputs.jacobian_range is not None:
+        jrange = tuple(float(v) for v in inputs.jacobian_range)
+    else:
+        jrange = (float(inputs.jacobian.min()), float(inputs.jacobian.max()))
     body += [
         "<h2>Jacobian determinant</h2>",
         figure(
-            figs.jacobian_figure(views, inputs.jacobian, jrange),
+            figs.jacobian_figure(views, inputs.jacobian, jrange, anatomy.shape),
             f"Volume change of the encoding: range {jrange[0]:.4f} .. {jrange[1]:.4f} in the image "
             "(> 1: the scanner stretched the image there, intensities diluted). " + boundary,
             fig_id="fig-jacobian",
