@@ -10,8 +10,8 @@ from pathlib import Path
 import matplotlib.image
 import numpy as np
 import pytest
-from bidsgen import MOVED_T1W, T2W_2D, configure_nipype, make_study
-from test_report import FLOAT32_RTOL, SHOWN_MM_TOL, check_png, check_self_contained, exact, parse
+from bidsgen import DWI, MOVED_T1W, T2W_2D, configure_nipype, make_study
+from test_report import FLOAT32_RTOL, SHOWN_MM_TOL, check_png, check_self_contained, exact, parse, shown
 
 from nl_unwarp.api import FrameSpec, WarpOutputs, correct_file
 from nl_unwarp.bids.names import derivative_name
@@ -22,6 +22,8 @@ from nl_unwarp.io.coilfile import coil_sha256
 from nl_unwarp.io.nifti import write_image
 
 SHAPE, VOXEL_MM = (32, 32, 24), 6.0
+#: Percentages are shown with 3 decimals: half a unit in the last place.
+SHOWN_PCT_TOL = 0.5e-3 + 1e-12
 #: A Jacobian determinant near 1 stored as float32: a few float32 epsilons (1.2e-7).
 JAC_FLOAT32_TOL = 1e-6
 #: Browser screenshot size (pixels); the page must lay out in it.
@@ -233,6 +235,20 @@ def test_bids_run_writes_per_image_pages_and_the_index(tmp_path, monkeypatch):
     assert exact(cells[f"flags.{by_image[MOVED_T1W]}"]) == ["far off isocenter (40 mm)"]
     t2 = parse((reports / (Path(T2W_2D).name.split(".")[0] + ".html")).read_text(encoding="utf-8"))
     check_png(t2.images["fig-slices"])
+    # The DWI's page shows the b-value deviation per shell of the weighting summary the run wrote
+    # (the b-deviation map's sidecar carries it, NLUnwarpShells).
+    sidecar = json.loads((out / derivative_name(DWI, "bdeviation", ext=".json")).read_text())
+    want = sidecar["NLUnwarpShells"]
+    dwi = parse((reports / (Path(DWI).name.split(".")[0] + ".html")).read_text(encoding="utf-8"))
+    shells = dwi.cells("shells")
+    assert len(want) >= 1 and f"bval.{len(want)}" not in shells
+    for i, shell in enumerate(want):
+        assert exact(shells[f"bval.{i}"]) == shell["bval"]
+        for key in ("median_deviation", "min_deviation", "max_deviation"):
+            assert exact(shells[f"{key}_percent.{i}"]) == shell[key]
+            assert shown(shells[f"{key}_percent.{i}"]) == pytest.approx(100 * shell[key], abs=SHOWN_PCT_TOL)
+    # No shells on an anatomical page.
+    assert "shells" not in t2.tables
     for sha_page in {u for u in page.urls if u.startswith("coil-")}:
         check_png(parse((reports / sha_page).read_text(encoding="utf-8")).images["fig-coil"])
     assert "reports/" in (out / ".bidsignore").read_text()

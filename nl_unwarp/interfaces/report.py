@@ -27,6 +27,9 @@ class _ImageReportInputSpec(BaseInterfaceInputSpec):
         exists=True,
         desc="coil model file: with magnitude and jacobian, a 3D page is made without reading the field",
     )
+    diffusion_summary = File(
+        exists=True, desc="a DWI's weighting summary JSON (from DiffusionWeighting): b deviation per shell"
+    )
     decision = traits.Dict(desc="decision record (from DecideCorrection)")
     metadata = traits.Dict(desc="the image's sidecar metadata (the keys the decision read are shown)")
     title = traits.Str(desc="name shown on the page (default: the raw file's name)")
@@ -72,6 +75,7 @@ class ImageReport(SimpleInterface):
             corrected_file=given("corrected"),
             magnitude_file=given("magnitude"),
             coil_file=given("coil_file"),
+            diffusion_summary=given("diffusion_summary"),
             decision=given("decision"),
             metadata=given("metadata"),
             title=given("title"),

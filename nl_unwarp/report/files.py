@@ -150,6 +150,7 @@ def write_image_report(
     corrected_file: str | Path | None = None,
     magnitude_file: str | Path | None = None,
     coil_file: str | Path | None = None,
+    diffusion_summary: Mapping | str | Path | None = None,
     decision: Mapping | None = None,
     metadata: Mapping | None = None,
     title: str | None = None,
@@ -183,6 +184,10 @@ def write_image_report(
         ``jacobian_interpolation_error``, the lattice's). Inflating the gzip
         files is most of the time of a report, the three-component field
         above all.
+    diffusion_summary : mapping or path, optional
+        A DWI's weighting summary (or its JSON file; from
+        :class:`~nl_unwarp.interfaces.diffusion.DiffusionWeighting`): the page
+        shows its b-value deviation per shell.
     decision, metadata : mapping, optional
         Decision record and the sidecar it read.
     title : str, optional
@@ -192,6 +197,10 @@ def write_image_report(
     """
     if not isinstance(summary, Mapping):
         summary = json.loads(Path(summary).read_text(encoding="utf-8"))
+    if diffusion_summary is not None:
+        if not isinstance(diffusion_summary, Mapping):
+            diffusion_summary = json.loads(Path(diffusion_summary).read_text(encoding="utf-8"))
+        summary = {**summary, "diffusion": dict(diffusion_summary)}
     maps = None
     if magnitude_file is not None and not _is_2d(summary, metadata):
         maps = _coil_maps(coil_file, summary, _header_affine(raw_file))

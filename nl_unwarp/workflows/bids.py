@@ -83,21 +83,33 @@ def init_bids_unwarp_wf(*, plan, output_dir: str | Path, site_config: str | Path
         if not skipped:
             fields.append("corrected")
         workflow.connect([(image_wf, sink, [(f"outputnode.{f}", f) for f in fields])])
-        add_bids_diffusion(workflow, row, label, output_dir, sink=sink, **dwi_options)
+        dwi = add_bids_diffusion(workflow, row, label, output_dir, sink=sink, **dwi_options)
         if reports:
-            _connect_report(workflow, image_wf, row, label, output_dir, skipped)
+            _connect_report(workflow, image_wf, row, label, output_dir, skipped, dwi)
     return workflow
 
 
-def _connect_report(workflow, image_wf, row, label: str, output_dir, skipped: bool) -> None:
-    """One image's quality report, put into ``<output_dir>/reports/``."""
+def _connect_report(workflow, image_wf, row, label: str, output_dir, skipped: bool,
+                    dwi: bool = False) -> None:
+    """One image's quality report, put into ``<output_dir>/reports/``.
+
+    The report gets the magnitude map and the coil file (so it need not
+    inflate the field) and, for a DWI, the weighting summary (its b-value
+    deviation per shell).
+    """
     from nl_unwarp.interfaces.report import ImageReport, SinkReport
     from nl_unwarp.report.files import REPORTS_DIR, image_report_name
 
     report = pe.Node(ImageReport(in_file=row.path, metadata=row.metadata, title=row.relpath),
                      name=f"{label}_report")
+    if Path(row.decision.coil_path).is_file():
+        # Used only if it is the coil the summary names (same SHA-256).
+        report.inputs.coil_file = str(Path(row.decision.coil_path).resolve())
     put = pe.Node(SinkReport(out_path=str(Path(output_dir) / REPORTS_DIR / image_report_name(row.relpath))),
                   name=f"{label}_report_put", run_without_submitting=True)
-    fields = ["summary", "field", "jacobian", "decision"] + ([] if skipped else ["corrected"])
+    fields = ["summary", "field", "jacobian", "magnitude", "decision"] + ([] if skipped else ["corrected"])
     workflow.connect([(image_wf, report, [(f"outputnode.{f}", f) for f in fields]),
                       (report, put, [("out_report", "in_report")])])
+    if dwi:
+        branch = workflow.get_node(f"{label}_dwi_wf")
+        workflow.connect(branch, "outputnode.summary", report, "diffusion_summary")
