@@ -30,10 +30,21 @@ class _Progress:
     def __init__(self, quiet: bool = False) -> None:
         self.quiet = quiet
         self.start = time.perf_counter()
+        self._last_nodes = 0.0
 
     def step(self, message: str) -> None:
         if not self.quiet:
             print(f"[{time.perf_counter() - self.start:6.1f} s] {message}", file=sys.stderr, flush=True)
+
+    def nodes(self, done: int, total: int) -> None:
+        """Workflow nodes finished, on one updating line (at most about once a second)."""
+        now = time.perf_counter()
+        if done < total and now - self._last_nodes < 1.0:
+            return
+        self._last_nodes = now
+        if not self.quiet:
+            print(f"\r  {done}/{total} pipeline steps done", end="\n" if done == total else "",
+                  file=sys.stderr, flush=True)
 
     def volumes(self, done: int, total: int) -> None:
         if total > 1 and not self.quiet:
@@ -212,7 +223,8 @@ def _cmd_correct(args, progress: _Progress) -> None:
             progress.step("writing the quality report")
             pages = write_correction_report(args.report, raw_file=args.source, corrected_file=args.corrected,
                                             summary=summary, field_file=outputs.field,
-                                            jacobian_file=outputs.jacobian, coil_file=args.coil)
+                                            jacobian_file=outputs.jacobian, coil_file=args.coil,
+                                            magnitude_file=outputs.magnitude)
             print(f"report           {pages[0]} (coil model page {pages[1].name})")
 
 
@@ -266,7 +278,8 @@ def _cmd_demo(args, progress: _Progress) -> None:
     if not args.phantom_only:
         from .bids.demodata import run_bids_demo
 
-        rows = run_bids_demo(Path(args.outdir) / "bids_demo", n_procs=args.nprocs, step=progress.step)
+        rows = run_bids_demo(Path(args.outdir) / "bids_demo", n_procs=args.nprocs, step=progress.step,
+                             progress=progress.nodes)
         print("\nmulti-site BIDS pipeline: FICTIONAL sites, scanners and subjects")
         _print_run_rows(rows)
         print(f"derivatives in {Path(args.outdir) / 'bids_demo' / 'derivatives'}")
@@ -378,6 +391,7 @@ def _cmd_bids_app(args, progress: _Progress) -> None:
     options.n_procs, options.omp_nthreads = args.nprocs, args.omp_nthreads
     options.order, options.jacobian = args.order, not args.no_jacobian
     options.emit_warp_for_skipped = args.emit_warp_for_skipped
+    options.progress = progress.nodes
     progress.step(f"indexing {args.bids_dir} and deciding per image")
     plan = build_plan(options)
     progress.step(f"running {len(plan.rows)} image(s) with the {options.plugin} plugin")
@@ -413,19 +427,24 @@ COMMANDS["compose"] = _cmd_compose
 
 
 def _report_scratch(args):
-    """The warp outputs, with a scratch field and Jacobian map when a report needs them."""
+    """The warp outputs, with scratch field, Jacobian and magnitude maps when a report needs them.
+
+    Scratch maps are uncompressed ``.nii``: they are read back at once, and gzip would
+    cost more than the report itself.
+    """
     import contextlib
     import tempfile
 
     outputs = _warp_outputs(args)
-    if not getattr(args, "report", None) or (outputs.field and outputs.jacobian):
+    if not getattr(args, "report", None) or (outputs.field and outputs.jacobian and outputs.magnitude):
         return contextlib.nullcontext(outputs)
 
     @contextlib.contextmanager
     def scratch():
         with tempfile.TemporaryDirectory(prefix="nl_unwarp_report_") as tmp:
-            outputs.field = outputs.field or str(Path(tmp) / "field.nii.gz")
-            outputs.jacobian = outputs.jacobian or str(Path(tmp) / "jacobian.nii.gz")
+            outputs.field = outputs.field or str(Path(tmp) / "field.nii")
+            outputs.jacobian = outputs.jacobian or str(Path(tmp) / "jacobian.nii")
+            outputs.magnitude = outputs.magnitude or str(Path(tmp) / "magnitude.nii")
             yield outputs
 
     return scratch()

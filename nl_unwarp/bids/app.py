@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 import logging
 import os
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -45,6 +46,8 @@ class RunOptions:
     order: int = 3
     jacobian: bool = True
     emit_warp_for_skipped: bool = False
+    #: Called as ``progress(done, total)`` each time a workflow node finishes.
+    progress: Callable[[int, int], None] | None = None
 
 
 def build_plan(options: RunOptions) -> Plan:
@@ -67,8 +70,22 @@ def build_plan(options: RunOptions) -> Plan:
     return plan
 
 
-def _plugin_args(options: RunOptions) -> dict:
+def _status_callback(total: int, progress: Callable[[int, int], None]):
+    """A nipype ``status_callback`` that counts finished nodes (Linear, MultiProc, ...)."""
+    finished = [0]
+
+    def callback(_node, status: str) -> None:
+        if status in ("end", "exception"):
+            finished[0] += 1
+            progress(min(finished[0], total), total)
+
+    return callback
+
+
+def _plugin_args(options: RunOptions, total_nodes: int = 0) -> dict:
     args = dict(options.plugin_args)
+    if options.progress is not None and total_nodes:
+        args.setdefault("status_callback", _status_callback(total_nodes, options.progress))
     if options.plugin == "MultiProc":
         args.setdefault("n_procs", options.n_procs or os.cpu_count() or 1)
         # Fresh worker processes: forking a parent whose numba thread pool has
@@ -166,7 +183,8 @@ def run(options: RunOptions, *, plan: Plan | None = None) -> tuple[list[dict], l
     if workflow.list_node_names():
         before = set(crash_dir.glob("crash-*")) if crash_dir.exists() else set()
         try:
-            workflow.run(plugin=options.plugin, plugin_args=_plugin_args(options))
+            workflow.run(plugin=options.plugin,
+                         plugin_args=_plugin_args(options, len(workflow.list_node_names())))
         except RuntimeError:
             after = set(crash_dir.glob("crash-*")) if crash_dir.exists() else set()
             failures = sorted(str(p) for p in after - before) or ["see the nipype log"]

@@ -237,13 +237,14 @@ def make_dataset(root: str | Path, *, subjects_per_site: int = 2, simulate: bool
 
 
 def run_bids_demo(outdir: str | Path, *, n_procs: int = 2, subjects_per_site: int = 2,
-                  step=None) -> list[dict]:
+                  step=None, progress=None) -> list[dict]:
     """Generate the invented dataset and run the whole BIDS pipeline on it (MultiProc).
 
     Writes ``outdir/rawdata`` (the dataset), ``outdir/coils`` (the fictional coil
     models, outside the dataset), ``outdir/sites.json``, ``outdir/derivatives``
     and ``outdir/work``. Returns the per-image summary rows of
-    :func:`nl_unwarp.bids.app.run`.
+    :func:`nl_unwarp.bids.app.run`. ``step(message)`` announces each stage and
+    ``progress(done, total)`` counts finished pipeline nodes.
     """
     import os
 
@@ -258,7 +259,8 @@ def run_bids_demo(outdir: str | Path, *, n_procs: int = 2, subjects_per_site: in
     config = write_site_config(outdir / "sites.json")
     say(f"running the BIDS pipeline (MultiProc, {n_procs} processes)")
     rows, failures = run(RunOptions(bids_dir=raw, output_dir=outdir / "derivatives", site_config=config,
-                                    work_dir=outdir / "work", plugin="MultiProc", n_procs=n_procs))
+                                    work_dir=outdir / "work", plugin="MultiProc", n_procs=n_procs,
+                                    progress=progress))
     if failures:
         from ..errors import InputError
 
