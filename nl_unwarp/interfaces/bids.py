@@ -11,6 +11,8 @@ from nipype.interfaces.base import (
     traits,
 )
 
+from ._utils import optional
+
 __all__ = ["DecideCorrection", "WriteDerivatives"]
 
 
@@ -62,14 +64,10 @@ class DecideCorrection(SimpleInterface):
     def _run_interface(self, runtime):
         from ..bids.decisions import decide_file
 
-        def given(name):
-            value = getattr(self.inputs, name)
-            return value if isdefined(value) else None
-
-        offset = given("isocenter_offset_mm")
         decision = decide_file(self.inputs.in_file, self.inputs.metadata,
-                               site_config=given("site_config"), coil_override=given("coil_override"),
-                               isocenter_offset_mm=tuple(offset) if offset else None)
+                               site_config=optional(self.inputs, "site_config"),
+                               coil_override=optional(self.inputs, "coil_override"),
+                               isocenter_offset_mm=optional(self.inputs, "isocenter_offset_mm", tuple))
         self._results.update(action=decision.action, mode=decision.mode, reason=decision.reason,
                              coil_model=decision.coil_path, patient_position=decision.position,
                              decision=decision.as_record())
@@ -124,8 +122,8 @@ class WriteDerivatives(SimpleInterface):
 
         files = {k: getattr(self.inputs, k) for k in ("corrected", "field", "jacobian", "magnitude")
                  if isdefined(getattr(self.inputs, k))}
-        params = self.inputs.parameters if isdefined(self.inputs.parameters) else {}
-        companions = self.inputs.companions if isdefined(self.inputs.companions) else {}
+        params = optional(self.inputs, "parameters") or {}
+        companions = optional(self.inputs, "companions") or {}
         written = sink_image(self.inputs.out_dir, self.inputs.source_relpath,
                              metadata=self.inputs.metadata, decision=self.inputs.decision,
                              parameters=params, summary_file=self.inputs.summary, files=files,

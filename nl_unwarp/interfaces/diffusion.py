@@ -28,11 +28,11 @@ from nipype.interfaces.base import (
     File,
     SimpleInterface,
     TraitedSpec,
-    isdefined,
     traits,
 )
 
 from ..frames import PATIENT_POSITIONS
+from ._utils import optional
 
 __all__ = ["DiffusionDerivativeFiles", "DiffusionWeighting", "WriteDiffusionDerivatives",
            "diffusion_weighting_files", "tensor_sidecar", "weighting_derivative_files"]
@@ -322,15 +322,12 @@ class DiffusionWeighting(SimpleInterface):
             names.update(voxel_bvals="voxel_bvals.nii", voxel_bvecs="voxel_bvecs.nii")
         paths = {k: os.path.join(runtime.cwd, v) for k, v in names.items()}
 
-        def given(name):
-            value = getattr(self.inputs, name)
-            return tuple(value) if isdefined(value) else None
-
-        frame = FrameSpec(self.inputs.patient_position, given("table_position_mm"),
-                          given("isocenter_offset_mm"))
+        frame = FrameSpec(self.inputs.patient_position,
+                          optional(self.inputs, "table_position_mm", tuple),
+                          optional(self.inputs, "isocenter_offset_mm", tuple))
         diffusion_weighting_files(
             self.inputs.in_file, self.inputs.in_bval, self.inputs.in_bvec, self.inputs.coil_model,
-            frame=frame, mask=self.inputs.mask if isdefined(self.inputs.mask) else None,
+            frame=frame, mask=optional(self.inputs, "mask"),
             out_tensor=paths["tensor"], out_deviation=paths["deviation"], out_summary=paths["summary"],
             out_mean_bval=paths["mean_bval"], out_mean_bvec=paths["mean_bvec"],
             out_voxel_bvals=paths.get("voxel_bvals"), out_voxel_bvecs=paths.get("voxel_bvecs"))

@@ -9,9 +9,10 @@ from nipype.interfaces.base import (
     File,
     SimpleInterface,
     TraitedSpec,
-    isdefined,
     traits,
 )
+
+from ._utils import optional
 
 __all__ = ["ImageReport", "SinkReport"]
 
@@ -62,8 +63,7 @@ class ImageReport(SimpleInterface):
         from ..report.files import write_image_report
 
         def given(name):
-            value = getattr(self.inputs, name)
-            return value if isdefined(value) else None
+            return optional(self.inputs, name)
 
         out = os.path.join(runtime.cwd, "report.html")
         write_image_report(
