@@ -5,14 +5,23 @@ Jacobian factor) runs in parallel on all cores and never materialises the
 (3, X, Y, Z) coordinate array that :func:`scipy.ndimage.map_coordinates`
 needs; ``benchmarks/bench_correct.py`` measures what that buys against
 SimpleITK and scipy. The tests check these kernels against scipy.ndimage.
+
+The chain kernels (:func:`fold_chain`, :func:`fold_chain_and_sample`) take
+a target point through affines, displacement fields and factor maps
+(:mod:`nl_unwarp.compose`); the second samples the raw image at the end in
+the same pass, so resampling once needs no stored composed field
+(``benchmarks/bench_compose.py``; checked against ITK in the tests).
 """
 
 from __future__ import annotations
 
 import numba
 import numpy as np
+from numba.core import cgutils, types
+from numba.extending import intrinsic
 
-__all__ = ["pull_resample"]
+__all__ = ["STEP_AFFINE", "STEP_FACTOR", "STEP_FACTOR_NODES", "STEP_FIELD", "STEP_FIELD_FACTOR",
+           "STEP_FIELD_NODES", "fold_chain", "fold_chain_and_sample", "pull_resample"]
 
 
 @numba.njit(inline="always", cache=True)
@@ -198,3 +207,267 @@ def radius_squared_exceeds(linear, origin, radius_sq, out):
                     v = origin[c] + linear[c, 0] * i + linear[c, 1] * j + linear[c, 2] * k
                     acc += v * v
                 out[i, j, k] = acc > radius_sq
+
+
+# Chains of pull maps (nl_unwarp.compose). A chain is a small program of steps
+# (kinds below), followed per target voxel. Fields and factor maps are float32
+# buffers in NIfTI's memory order (x fastest; a field's components follow one
+# another as whole volumes), passed by address: a Fortran-ordered array is used
+# without a copy, and fetching a buffer inside the loop costs no reference
+# counting (tuples of arrays do, and two threads then contend for the counts).
+# The caller keeps the buffers alive for the call (nl_unwarp.compose does).
+
+#: Step kinds of a chain program (row ``(kind, a, b, o0, o1, o2)``):
+#: an affine ``affines[a]``; a field (buffer ``a``) interpolated at the point;
+#: a factor map (buffer ``a``) interpolated at the point; a field (``a``) and a
+#: factor map (``b``) on the same lattice (map index = field index + o),
+#: sharing the interpolation weights; a field, or a factor map, whose nodes
+#: are the target grid's (index = target index + o): read there, no weights.
+STEP_AFFINE, STEP_FIELD, STEP_FACTOR, STEP_FIELD_FACTOR, STEP_FIELD_NODES, STEP_FACTOR_NODES = range(6)
+#: Target voxels are visited in tiles of TILE x TILE lines along x (one tile
+#: per parallel task): neighbouring lines in y and z are then visited close
+#: in time, and the parts of the fields and of the raw image they read are
+#: still in cache when reused (a rotated chain drifts across rows).
+TILE = 16
+
+
+@intrinsic
+def _as_pointer(typingctx, address):
+    """An integer address as a void pointer (for :func:`numba.carray`)."""
+    if not isinstance(address, types.Integer):
+        return None
+
+    def codegen(context, builder, signature, args):
+        return builder.inttoptr(args[0], cgutils.voidptr_t)
+
+    return types.voidptr(address), codegen
+
+
+@numba.njit(inline="always", cache=True)
+def _buffer(addresses, sizes, n):
+    """Buffer ``n`` as a float32 array (no owner: the caller keeps it alive)."""
+    return numba.carray(_as_pointer(addresses[n]), (sizes[n],), np.float32)
+
+
+@numba.njit(inline="always", cache=True)
+def _point(m, x, y, z):
+    """``m[:, :3] @ (x, y, z) + m[:, 3]`` for a (3, 4) matrix."""
+    return (m[0, 0] * x + m[0, 1] * y + m[0, 2] * z + m[0, 3],
+            m[1, 0] * x + m[1, 1] * y + m[1, 2] * z + m[1, 3],
+            m[2, 0] * x + m[2, 1] * y + m[2, 2] * z + m[2, 3])
+
+
+@numba.njit(inline="always", cache=True)
+def _point_n(m, n, x, y, z):
+    """:func:`_point` with matrix ``m[n]`` (indexed in place: a view would be reference-counted)."""
+    return (m[n, 0, 0] * x + m[n, 0, 1] * y + m[n, 0, 2] * z + m[n, 0, 3],
+            m[n, 1, 0] * x + m[n, 1, 1] * y + m[n, 1, 2] * z + m[n, 1, 3],
+            m[n, 2, 0] * x + m[n, 2, 1] * y + m[n, 2, 2] * z + m[n, 2, 3])
+
+
+@numba.njit(inline="always", cache=True)
+def _clamp(i, n):
+    return 0 if i < 0 else (n - 1 if i > n - 1 else i)
+
+
+@numba.njit(inline="always", cache=True)
+def _floor(g):
+    """Floor and fraction of a continuous index ``g >= -1``."""
+    b = int(g + 1.0) - 1
+    return b, g - b
+
+
+@numba.njit(inline="always", cache=True)
+def _lerp(v, base, nx, plane, i0, i1, j0, j1, k0, k1, ti, tj, tk):
+    """Trilinear blend of ``v[base + i + nx j + plane k]`` over the eight corners."""
+    r00, r10 = base + nx * j0 + plane * k0, base + nx * j1 + plane * k0
+    r01, r11 = base + nx * j0 + plane * k1, base + nx * j1 + plane * k1
+    a00 = v[r00 + i0] + ti * (v[r00 + i1] - v[r00 + i0])
+    a10 = v[r10 + i0] + ti * (v[r10 + i1] - v[r10 + i0])
+    a01 = v[r01 + i0] + ti * (v[r01 + i1] - v[r01 + i0])
+    a11 = v[r11 + i0] + ti * (v[r11 + i1] - v[r11 + i0])
+    b0 = a00 + tj * (a10 - a00)
+    b1 = a01 + tj * (a11 - a01)
+    return b0 + tk * (b1 - b0)
+
+
+@numba.njit(inline="always", cache=True)
+def _factor_at(v, nx, ny, nz, gi, gj, gk):
+    """A factor map trilinear at a continuous index, held at its edge values beyond the grid."""
+    if gi != gi or gj != gj or gk != gk:  # NaN point: no factor
+        return 1.0
+    bi, ti = _floor(min(max(gi, -1.0), float(nx)))
+    bj, tj = _floor(min(max(gj, -1.0), float(ny)))
+    bk, tk = _floor(min(max(gk, -1.0), float(nz)))
+    return _lerp(v, 0, nx, nx * ny, _clamp(bi, nx), _clamp(bi + 1, nx), _clamp(bj, ny), _clamp(bj + 1, ny),
+                 _clamp(bk, nz), _clamp(bk + 1, nz), ti, tj, tk)
+
+
+@numba.njit(inline="always", cache=True)
+def _follow(i, j, k, x, y, z, program, affines, addresses, sizes, dims, maps):
+    """Take target voxel (i, j, k), at world point (x, y, z), through the chain.
+
+    Returns the end point, the product of the factor maps met on the way, and
+    whether a field was met outside its grid. Field displacements are
+    trilinear between grid points (ITK's ``VectorLinearInterpolateImageFunction``);
+    a point is inside a field when its continuous index lies within
+    [-0.5, n - 0.5] on every axis (ITK's rule), else the field is identity
+    there and the voxel is flagged. Factor maps are trilinear too, held at
+    their edge values beyond their grid.
+    """
+    f = 1.0
+    miss = False
+    for s in range(program.shape[0]):
+        kind, a = program[s, 0], program[s, 1]
+        if kind == STEP_AFFINE:
+            x, y, z = _point_n(affines, a, x, y, z)
+            continue
+        nx, ny, nz = dims[a, 0], dims[a, 1], dims[a, 2]
+        plane = nx * ny
+        v = _buffer(addresses, sizes, a)
+        if kind == STEP_FIELD_NODES or kind == STEP_FACTOR_NODES:
+            ii, jj, kk = i + program[s, 3], j + program[s, 4], k + program[s, 5]
+            if kind == STEP_FACTOR_NODES:
+                f *= v[_clamp(ii, nx) + nx * _clamp(jj, ny) + plane * _clamp(kk, nz)]
+            elif 0 <= ii < nx and 0 <= jj < ny and 0 <= kk < nz:
+                o = ii + nx * jj + plane * kk
+                vol = plane * nz
+                x += v[o]
+                y += v[o + vol]
+                z += v[o + 2 * vol]
+            else:
+                miss = True
+            continue
+        gi, gj, gk = _point_n(maps, a, x, y, z)
+        if kind == STEP_FACTOR:
+            f *= _factor_at(v, nx, ny, nz, gi, gj, gk)
+            continue
+        inside = -0.5 <= gi <= nx - 0.5 and -0.5 <= gj <= ny - 0.5 and -0.5 <= gk <= nz - 0.5
+        if not inside:
+            if kind == STEP_FIELD_FACTOR:
+                b = program[s, 2]
+                f *= _factor_at(_buffer(addresses, sizes, b), dims[b, 0], dims[b, 1], dims[b, 2],
+                                gi + program[s, 3], gj + program[s, 4], gk + program[s, 5])
+            miss = True
+            continue
+        bi, ti = _floor(gi)
+        bj, tj = _floor(gj)
+        bk, tk = _floor(gk)
+        i0, i1, j0, j1 = _clamp(bi, nx), _clamp(bi + 1, nx), _clamp(bj, ny), _clamp(bj + 1, ny)
+        k0, k1 = _clamp(bk, nz), _clamp(bk + 1, nz)
+        vol = plane * nz
+        dx = _lerp(v, 0, nx, plane, i0, i1, j0, j1, k0, k1, ti, tj, tk)
+        dy = _lerp(v, vol, nx, plane, i0, i1, j0, j1, k0, k1, ti, tj, tk)
+        dz = _lerp(v, 2 * vol, nx, plane, i0, i1, j0, j1, k0, k1, ti, tj, tk)
+        if kind == STEP_FIELD_FACTOR:
+            b = program[s, 2]
+            mx, my, mz = dims[b, 0], dims[b, 1], dims[b, 2]
+            bi, bj, bk = bi + program[s, 3], bj + program[s, 4], bk + program[s, 5]
+            f *= _lerp(_buffer(addresses, sizes, b), 0, mx, mx * my, _clamp(bi, mx), _clamp(bi + 1, mx),
+                       _clamp(bj, my), _clamp(bj + 1, my), _clamp(bk, mz), _clamp(bk + 1, mz), ti, tj, tk)
+        x += dx
+        y += dy
+        z += dz
+    return x, y, z, f, miss
+
+
+@numba.njit(inline="always", cache=True)
+def _fold_voxel(i, j, k, target_map, raw_map, raw_dims, use_raw, program, affines, addresses, sizes, dims,
+                maps, disp, factor, missed):
+    """One target voxel of :func:`fold_chain`."""
+    px, py, pz = _point(target_map, i, j, k)
+    x, y, z, f, miss = _follow(i, j, k, px, py, pz, program, affines, addresses, sizes, dims, maps)
+    disp[i, j, k, 0] = x - px
+    disp[i, j, k, 1] = y - py
+    disp[i, j, k, 2] = z - pz
+    factor[i, j, k] = f
+    if miss and use_raw:
+        ri, rj, rk = _point(raw_map, x, y, z)
+        miss = _inside(ri, raw_dims[0]) and _inside(rj, raw_dims[1]) and _inside(rk, raw_dims[2])
+    missed[i, j, k] = miss
+
+
+@numba.njit(inline="always", cache=True)
+def _sample_voxel(i, j, k, coef, order, fill, target_map, raw_map, program, affines, addresses, sizes, dims,
+                  maps, out, missed, wx, wy, wz):
+    """One target voxel of :func:`fold_chain_and_sample`."""
+    px, py, pz = _point(target_map, i, j, k)
+    x, y, z, f, miss = _follow(i, j, k, px, py, pz, program, affines, addresses, sizes, dims, maps)
+    ri, rj, rk = _point(raw_map, x, y, z)
+    if _inside(ri, coef.shape[0]) and _inside(rj, coef.shape[1]) and _inside(rk, coef.shape[2]):
+        out[i, j, k] = _sample(coef, ri, rj, rk, order, wx, wy, wz) * f
+        missed[i, j, k] = miss
+    else:
+        out[i, j, k] = fill
+        missed[i, j, k] = False
+
+
+@numba.njit(parallel=True, cache=True)
+def fold_chain(target_map, raw_map, raw_dims, use_raw, program, affines, addresses, sizes, dims, maps,
+               disp, factor, missed):
+    """Fold a chain into a displacement field on a target grid, x fastest.
+
+    Parameters
+    ----------
+    target_map : (3, 4) float64 ndarray
+        Target voxel index -> world RAS mm.
+    raw_map : (3, 4) float64 ndarray
+        World RAS mm -> raw voxel index (used if ``use_raw``).
+    raw_dims : (3,) int64 ndarray
+    use_raw : bool
+        Flag a miss only where the end point lies inside the raw field of view.
+    program : (S, 6) int64 ndarray
+        One row per step (see the step kinds above).
+    affines : (A, 3, 4) float64 ndarray
+        Pull matrices, RAS mm.
+    addresses, sizes : (B,) int64 ndarray
+        Address and length (float32 items) of each buffer: field displacements
+        (RAS mm, x fastest, components slowest) and factor maps.
+    dims : (B, 3) int64 ndarray
+        Grid shape of each buffer.
+    maps : (B, 3, 4) float64 ndarray
+        World RAS mm -> buffer voxel index.
+    disp : (X, Y, Z, 3) float32 ndarray
+        End point minus target point, RAS mm (written).
+    factor : (X, Y, Z) float32 ndarray
+        Product of the factor maps (written).
+    missed : (X, Y, Z) bool ndarray
+        Target points that met a field outside its grid (written).
+    """
+    nx, ny, nz = missed.shape
+    tj, tk = (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
+    for tile in numba.prange(tj * tk):
+        for row in range(TILE * TILE):
+            j = (tile % tj) * TILE + row % TILE
+            k = (tile // tj) * TILE + row // TILE
+            if j >= ny or k >= nz:
+                continue
+            for i in range(nx):
+                _fold_voxel(i, j, k, target_map, raw_map, raw_dims, use_raw, program, affines, addresses,
+                            sizes, dims, maps, disp, factor, missed)
+
+
+@numba.njit(parallel=True, cache=True)
+def fold_chain_and_sample(coef, order, fill, target_map, raw_map, program, affines, addresses, sizes,
+                          dims, maps, out, missed):
+    """Follow the chain from every target voxel and sample the raw image there, in one pass.
+
+    The same chain arguments as :func:`fold_chain`; ``coef`` and ``order``
+    as in :func:`pull_resample` (raw voxel index from ``raw_map`` applied to
+    the end point). ``out`` gets the sample times the factor, or ``fill``
+    outside the raw field of view; ``missed`` flags target points that met a
+    field outside its grid and land inside the raw field of view. No
+    composed field is stored.
+    """
+    nx, ny, nz = out.shape
+    tj, tk = (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
+    for tile in numba.prange(tj * tk):
+        wx, wy, wz = np.empty(4), np.empty(4), np.empty(4)
+        for row in range(TILE * TILE):
+            j = (tile % tj) * TILE + row % TILE
+            k = (tile // tj) * TILE + row // TILE
+            if j >= ny or k >= nz:
+                continue
+            for i in range(nx):
+                _sample_voxel(i, j, k, coef, order, fill, target_map, raw_map, program, affines, addresses,
+                              sizes, dims, maps, out, missed, wx, wy, wz)

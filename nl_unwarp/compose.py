@@ -25,8 +25,20 @@ output side to the point on the input side where the image is sampled.
   zero (identity) outside its grid (continuous index beyond ``[-0.5, n - 0.5]``),
   as ITK and nitransforms do silently. Here a target point that meets a field
   outside its grid is *counted* and reported (see :func:`compose_chain`).
+* :class:`FactorStep` -- does not move the point: it multiplies the chain's
+  intensity factor by a map sampled (trilinearly) where the step sits. Our
+  correction's Jacobian determinant enters a chain this way, just before the
+  correction: ``[W, A, FactorStep(det J), G]`` gives
+  :math:`I(\\mathbf p) = I_{raw}(G(\\mathbf q))\\,\\det J(\\mathbf q)` with
+  :math:`\\mathbf q = A(W(\\mathbf p))` the corrected-space point, which is
+  what correcting first (:math:`I_c = I_{raw} \\circ G \\cdot \\det J`) and
+  registering the corrected image afterwards gives.
 
-Pure math: numpy and numba, no files.
+:func:`compose_chain` stores the folded field (to write it for other tools);
+:func:`resample_chain` follows the chain from every target voxel and samples
+the raw image at its end in the same compiled pass, storing no field.
+
+Pure math: numpy and numba (:mod:`nl_unwarp._kernels`), no files.
 """
 
 from __future__ import annotations
@@ -35,17 +47,24 @@ import logging
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-import numba
 import numpy as np
+
+from .resample import ORDERS, prefilter, resample_volume
 
 __all__ = [
     "AffineStep",
     "ComposedField",
     "CoverageError",
+    "FIELD_MARGIN_MM",
+    "FactorStep",
     "FieldStep",
+    "ResampledChain",
     "affine_pull_points",
     "compose_chain",
     "grid_with_margin",
+    "margin_slices",
+    "resample_chain",
+    "sample_factor",
     "sample_field",
 ]
 
@@ -53,10 +72,33 @@ log = logging.getLogger("nl_unwarp")
 
 #: What to do when target points meet a field outside its grid.
 ON_OUTSIDE = ("raise", "warn", "ignore")
+#: Margin (mm) by which every field we write extends beyond the raw field of
+#: view on every side (re-exported as ``nl_unwarp.api.FIELD_MARGIN_MM``): ITK
+#: applies identity outside a field's grid without a warning (CONVENTIONS.md
+#: 4), and registration moves points there. Larger than the displacement of a
+#: gradient system inside its valid radius.
+FIELD_MARGIN_MM = 20.0
+#: Orders that the one-pass kernel samples (the others fold, then resample).
+_FUSED_ORDERS = (0, 1, 3)
 
 
 class CoverageError(ValueError):
     """A target grid reaches outside a displacement field's grid."""
+
+
+def _grid_affine(affine, what: str) -> np.ndarray:
+    affine = np.asarray(affine, dtype=float)
+    if affine.shape != (4, 4) or abs(np.linalg.det(affine[:3, :3])) < 1e-12:
+        raise ValueError(f"{what} needs a non-degenerate (4, 4) grid affine")
+    return affine
+
+
+def _x_fastest(values, dims: int, what: str) -> np.ndarray:
+    """float32 in NIfTI's memory order (x fastest): no copy for a Fortran-ordered float32 array."""
+    arr = np.asfortranarray(values, dtype=np.float32)
+    if arr.ndim != dims:
+        raise ValueError(what)
+    return arr
 
 
 @dataclass(frozen=True)
@@ -80,18 +122,50 @@ class AffineStep:
 
 
 @dataclass(frozen=True)
+class FactorStep:
+    """An intensity factor map: multiplies the chain's factor, does not move the point.
+
+    Parameters
+    ----------
+    values : (X, Y, Z) ndarray
+        The factor at the grid points (e.g. our correction's Jacobian determinant).
+    affine : (4, 4) ndarray
+        Grid affine, voxel index -> RAS mm.
+
+    Notes
+    -----
+    Sampled trilinearly where the step sits in the chain; beyond the grid the
+    nearest edge value is used (a Jacobian map on the raw grid then serves
+    corrected-space points up to a displacement beyond the raw field of view).
+    Stored float32, x fastest (no copy for a Fortran-ordered float32 input).
+    """
+
+    values: np.ndarray
+    affine: np.ndarray
+
+    def __post_init__(self) -> None:
+        vals = _x_fastest(self.values, 3, f"a factor step needs an (X, Y, Z) map, got "
+                                          f"{np.shape(self.values)}")
+        object.__setattr__(self, "values", vals)
+        object.__setattr__(self, "affine", _grid_affine(self.affine, "a factor step"))
+
+
+@dataclass(frozen=True)
 class FieldStep:
     """A displacement field pull map: ``q = p + d(p)``, RAS mm.
 
     Parameters
     ----------
     disp_ras_mm : (X, Y, Z, 3) ndarray
-        Displacement at the grid points, world RAS mm.
+        Displacement at the grid points, world RAS mm. Stored float32, x
+        fastest and components slowest (NIfTI's order, that of our warps and
+        of fields read from files): such an input is kept without a copy.
     affine : (4, 4) ndarray
         Grid affine, voxel index -> RAS mm.
     jacobian : (X, Y, Z) ndarray, optional
-        An intensity factor carried with the field (our correction's Jacobian
-        determinant); composed factors multiply.
+        An intensity factor on the field's own grid (our correction's Jacobian
+        determinant), applied where the field is applied: the same as a
+        :class:`FactorStep` on this grid just before this step.
     """
 
     disp_ras_mm: np.ndarray
@@ -99,16 +173,14 @@ class FieldStep:
     jacobian: np.ndarray | None = None
 
     def __post_init__(self) -> None:
-        disp = np.ascontiguousarray(self.disp_ras_mm, dtype=np.float32)
-        if disp.ndim != 4 or disp.shape[3] != 3:
+        disp = _x_fastest(self.disp_ras_mm, 4, f"a field step needs an (X, Y, Z, 3) displacement, "
+                                               f"got {np.shape(self.disp_ras_mm)}")
+        if disp.shape[3] != 3:
             raise ValueError(f"a field step needs an (X, Y, Z, 3) displacement, got {disp.shape}")
-        affine = np.asarray(self.affine, dtype=float)
-        if affine.shape != (4, 4) or abs(np.linalg.det(affine[:3, :3])) < 1e-12:
-            raise ValueError("a field step needs a non-degenerate (4, 4) grid affine")
         object.__setattr__(self, "disp_ras_mm", disp)
-        object.__setattr__(self, "affine", affine)
+        object.__setattr__(self, "affine", _grid_affine(self.affine, "a field step"))
         if self.jacobian is not None:
-            jac = np.ascontiguousarray(self.jacobian, dtype=np.float32)
+            jac = _x_fastest(self.jacobian, 3, "jacobian must be an (X, Y, Z) map")
             if jac.shape != disp.shape[:3]:
                 raise ValueError(f"jacobian shape {jac.shape} differs from the field grid {disp.shape[:3]}")
             object.__setattr__(self, "jacobian", jac)
@@ -118,9 +190,12 @@ class FieldStep:
         return tuple(self.disp_ras_mm.shape[:3])
 
 
+Step = AffineStep | FieldStep | FactorStep
+
+
 @dataclass
 class ComposedField:
-    """Result of :func:`compose_chain` on a target grid.
+    """Result of :func:`compose_chain` on a target grid (arrays x fastest, as NIfTI stores them).
 
     Attributes
     ----------
@@ -129,8 +204,9 @@ class ComposedField:
     affine : (4, 4) ndarray
         Target grid affine.
     factor : (X, Y, Z) float32 ndarray or None
-        Product of the intensity factors of the field steps that carry one,
-        each sampled where that step is applied; None if no step carries one.
+        Product of the chain's factor maps (:class:`FactorStep`, or a
+        :attr:`FieldStep.jacobian`), each sampled where it sits in the chain;
+        None if the chain has none.
     uncovered : (X, Y, Z) bool ndarray
         Target points that met a field outside its grid (and, when the raw
         grid is known, whose final point lies inside the raw field of view).
@@ -139,6 +215,26 @@ class ComposedField:
     disp_ras_mm: np.ndarray
     affine: np.ndarray
     factor: np.ndarray | None
+    uncovered: np.ndarray
+
+    @property
+    def uncovered_fraction(self) -> float:
+        return float(self.uncovered.mean()) if self.uncovered.size else 0.0
+
+
+@dataclass
+class ResampledChain:
+    """Result of :func:`resample_chain`.
+
+    Attributes
+    ----------
+    data : (X, Y, Z) float32 ndarray
+        The raw image resampled once onto the target grid (times the chain's factor).
+    uncovered : (X, Y, Z) bool ndarray
+        Target points that met a field outside its grid and land inside the raw field of view.
+    """
+
+    data: np.ndarray
     uncovered: np.ndarray
 
     @property
@@ -168,175 +264,153 @@ def grid_with_margin(shape: Sequence[int], affine: np.ndarray, margin_mm: float
     return new_shape, new_affine
 
 
-@numba.njit(inline="always", cache=True)
-def _clamp(i, n):
-    return 0 if i < 0 else (n - 1 if i > n - 1 else i)
+def margin_slices(shape: Sequence[int], grown_shape: Sequence[int]) -> tuple[slice, slice, slice]:
+    """Where the original grid sits inside the one :func:`grid_with_margin` made of it."""
+    return tuple(slice((g - n) // 2, (g - n) // 2 + n) for n, g in zip(shape, grown_shape, strict=True))
 
 
-@numba.njit(inline="always", cache=True)
-def _blend(c000, c001, c010, c011, c100, c101, c110, c111, ti, tj, tk):
-    """Trilinear blend of the eight corner values (index order i, j, k)."""
-    c00 = c000 + tk * (c001 - c000)
-    c01 = c010 + tk * (c011 - c010)
-    c10 = c100 + tk * (c101 - c100)
-    c11 = c110 + tk * (c111 - c110)
-    c0 = c00 + tj * (c01 - c00)
-    c1 = c10 + tj * (c11 - c10)
-    return c0 + ti * (c1 - c0)
-
-
-@numba.njit(inline="always", cache=True)
-def _clamp(i, n):
-    return 0 if i < 0 else (n - 1 if i > n - 1 else i)
-
-
-@numba.njit(inline="always", cache=True)
-def _lerp8(v, i0, i1, j0, j1, k0, k1, c, ti, tj, tk):
-    """Trilinear blend of channel ``c`` of ``v`` (4-D) or of ``v`` itself (3-D, ``c < 0``)."""
-    if c >= 0:
-        c00 = v[i0, j0, k0, c] + tk * (v[i0, j0, k1, c] - v[i0, j0, k0, c])
-        c01 = v[i0, j1, k0, c] + tk * (v[i0, j1, k1, c] - v[i0, j1, k0, c])
-        c10 = v[i1, j0, k0, c] + tk * (v[i1, j0, k1, c] - v[i1, j0, k0, c])
-        c11 = v[i1, j1, k0, c] + tk * (v[i1, j1, k1, c] - v[i1, j1, k0, c])
-    else:
-        c00 = v[i0, j0, k0] + tk * (v[i0, j0, k1] - v[i0, j0, k0])
-        c01 = v[i0, j1, k0] + tk * (v[i0, j1, k1] - v[i0, j1, k0])
-        c10 = v[i1, j0, k0] + tk * (v[i1, j0, k1] - v[i1, j0, k0])
-        c11 = v[i1, j1, k0] + tk * (v[i1, j1, k1] - v[i1, j1, k0])
-    c0 = c00 + tj * (c01 - c00)
-    c1 = c10 + tj * (c11 - c10)
-    return c0 + ti * (c1 - c0)
-
-
-@numba.njit(inline="always", cache=True)
-def _clamp(i, n):
-    return 0 if i < 0 else (n - 1 if i > n - 1 else i)
-
-
-@numba.njit(inline="always", cache=True)
-def _point(m, i, j, k):
-    return (m[0, 0] * i + m[0, 1] * j + m[0, 2] * k + m[0, 3],
-            m[1, 0] * i + m[1, 1] * j + m[1, 2] * k + m[1, 3],
-            m[2, 0] * i + m[2, 1] * j + m[2, 2] * k + m[2, 3])
-
-
-@numba.njit(parallel=True, cache=True)
-def _chain_pass(target_map, program, affines, fields, jacs, use_jacs, field_maps, disp, factor, missed):
-    """Push every target voxel through the whole chain in one pass.
-
-    ``program[s] = (kind, index)``: kind 0 is ``affines[index]`` (3 x 4 pull
-    matrix), kind 1 is ``fields[index]`` with ``field_maps[index]`` (world ->
-    voxel index). ``fields`` and ``jacs`` are tuples of arrays (one compiled
-    variant per chain length). A field's ``d`` is trilinear between grid
-    points, as ITK's ``VectorLinearInterpolateImageFunction``: a point is
-    inside when its continuous index lies within [-0.5, n - 0.5] on every
-    axis, neighbours beyond the edge are clamped; outside, ``d = 0``
-    (identity) and the voxel is flagged in ``missed``.
-    """
-    nx, ny, nz = disp.shape[0], disp.shape[1], disp.shape[2]
-    for i in numba.prange(nx):
-        for j in range(ny):
-            for k in range(nz):
-                px, py, pz = _point(target_map, i, j, k)
-                x, y, z = px, py, pz
-                f = 1.0
-                miss = False
-                for s in range(program.shape[0]):
-                    idx = program[s, 1]
-                    if program[s, 0] == 0:
-                        x, y, z = _point(affines[idx], x, y, z)
-                        continue
-                    field = fields[idx]
-                    fx, fy, fz = field.shape[0], field.shape[1], field.shape[2]
-                    gi, gj, gk = _point(field_maps[idx], x, y, z)
-                    if not (-0.5 <= gi <= fx - 0.5 and -0.5 <= gj <= fy - 0.5 and -0.5 <= gk <= fz - 0.5):
-                        miss = True
-                        continue
-                    # Indices >= -0.5 here: truncating index + 1 is the floor.
-                    bi, bj, bk = int(gi + 1.0) - 1, int(gj + 1.0) - 1, int(gk + 1.0) - 1
-                    ti, tj, tk = gi - bi, gj - bj, gk - bk
-                    if 0 <= bi < fx - 1 and 0 <= bj < fy - 1 and 0 <= bk < fz - 1:
-                        i0, i1, j0, j1, k0, k1 = bi, bi + 1, bj, bj + 1, bk, bk + 1
-                    else:
-                        i0, i1 = _clamp(bi, fx), _clamp(bi + 1, fx)
-                        j0, j1 = _clamp(bj, fy), _clamp(bj + 1, fy)
-                        k0, k1 = _clamp(bk, fz), _clamp(bk + 1, fz)
-                    dx = _blend(field[i0, j0, k0, 0], field[i0, j0, k1, 0], field[i0, j1, k0, 0],
-                                field[i0, j1, k1, 0], field[i1, j0, k0, 0], field[i1, j0, k1, 0],
-                                field[i1, j1, k0, 0], field[i1, j1, k1, 0], ti, tj, tk)
-                    dy = _blend(field[i0, j0, k0, 1], field[i0, j0, k1, 1], field[i0, j1, k0, 1],
-                                field[i0, j1, k1, 1], field[i1, j0, k0, 1], field[i1, j0, k1, 1],
-                                field[i1, j1, k0, 1], field[i1, j1, k1, 1], ti, tj, tk)
-                    dz = _blend(field[i0, j0, k0, 2], field[i0, j0, k1, 2], field[i0, j1, k0, 2],
-                                field[i0, j1, k1, 2], field[i1, j0, k0, 2], field[i1, j0, k1, 2],
-                                field[i1, j1, k0, 2], field[i1, j1, k1, 2], ti, tj, tk)
-                    if use_jacs[idx]:
-                        jac = jacs[idx]
-                        f *= _blend(jac[i0, j0, k0], jac[i0, j0, k1], jac[i0, j1, k0], jac[i0, j1, k1],
-                                    jac[i1, j0, k0], jac[i1, j0, k1], jac[i1, j1, k0], jac[i1, j1, k1],
-                                    ti, tj, tk)
-                    x += dx
-                    y += dy
-                    z += dz
-                disp[i, j, k, 0] = x - px
-                disp[i, j, k, 1] = y - py
-                disp[i, j, k, 2] = z - pz
-                factor[i, j, k] = f
-                missed[i, j, k] = miss
-
-
-@numba.njit(parallel=True, cache=True)
-def _keep_inside_raw(target_map, raw_map, raw_shape, disp, missed):
-    """Clear the miss flag of target points whose final point falls outside the raw grid."""
-    nx, ny, nz = disp.shape[0], disp.shape[1], disp.shape[2]
-    for i in numba.prange(nx):
-        for j in range(ny):
-            for k in range(nz):
-                if not missed[i, j, k]:
-                    continue
-                px, py, pz = _point(target_map, i, j, k)
-                ri, rj, rk = _point(raw_map, px + disp[i, j, k, 0], py + disp[i, j, k, 1],
-                                    pz + disp[i, j, k, 2])
-                missed[i, j, k] = (-0.5 <= ri <= raw_shape[0] - 0.5 and -0.5 <= rj <= raw_shape[1] - 0.5
-                                   and -0.5 <= rk <= raw_shape[2] - 0.5)
-
-
-def _as_step(step) -> AffineStep | FieldStep:
-    if isinstance(step, (AffineStep, FieldStep)):
+def _as_step(step) -> Step:
+    if isinstance(step, (AffineStep, FieldStep, FactorStep)):
         return step
     arr = np.asarray(step)
     if arr.shape == (4, 4):
         return AffineStep(arr)
-    raise TypeError(f"a chain item must be an AffineStep, a FieldStep or a (4, 4) matrix, got {type(step)}")
+    raise TypeError(f"a chain item must be an AffineStep, a FieldStep, a FactorStep or a (4, 4) "
+                    f"matrix, got {type(step)}")
 
 
-_NO_JACOBIAN = np.ones((1, 1, 1), np.float32)
-_NO_FIELD = np.zeros((1, 1, 1, 3), np.float32)
+def _world_to_index(affine: np.ndarray) -> np.ndarray:
+    return np.linalg.inv(affine)[:3]
 
 
-def _pack(steps: Sequence[AffineStep | FieldStep]):
-    """The chain as kernel arguments: (S, 2) program, stacked affines, tuples of fields."""
-    program, affines, fields, jacs, use_jacs, maps = [], [], [], [], [], []
-    for step in steps:
-        if isinstance(step, AffineStep):
-            program.append((0, len(affines)))
-            affines.append(step.matrix_ras[:3])
-            continue
-        program.append((1, len(fields)))
-        fields.append(step.disp_ras_mm)
-        jacs.append(_NO_JACOBIAN if step.jacobian is None else step.jacobian)
-        use_jacs.append(step.jacobian is not None)
-        maps.append(np.linalg.inv(step.affine)[:3])
-    if not fields:  # the kernel needs typed (unused) entries
-        fields, jacs, use_jacs, maps = [_NO_FIELD], [_NO_JACOBIAN], [False], [np.zeros((3, 4))]
-    return (np.asarray(program, np.int64).reshape(-1, 2),
-            np.ascontiguousarray(affines if affines else np.zeros((1, 3, 4)), dtype=float),
-            tuple(fields), tuple(jacs), np.asarray(use_jacs, np.bool_),
-            np.ascontiguousarray(maps, dtype=float))
+#: Grids whose voxel centres coincide within this (voxels) over the whole grid
+#: are treated as one lattice: a field is read at its nodes, or a factor map
+#: shares a field's interpolation weights. Affines stored as float32 in NIfTI
+#: headers place voxels ~1e-5 voxel apart; a trilinear weight of 1e-4 changes
+#: a 1 mm field by less than 1e-4 of its change across one voxel.
+LATTICE_TOL_VOXELS = 1e-4
+
+
+def _lattice_offset(index_map: np.ndarray, shape: Sequence[int]) -> np.ndarray | None:
+    """Integer offset ``o`` if ``index_map`` (3 x 4) sends voxel ``v`` of a grid of ``shape``
+    to ``v + o`` (within :data:`LATTICE_TOL_VOXELS` at every corner), else None."""
+    corners = np.array(np.meshgrid(*[[0, max(int(n) - 1, 0)] for n in shape], indexing="ij"),
+                       float).reshape(3, -1)
+    mapped = index_map[:, :3] @ corners + index_map[:, 3:]
+    offset = np.rint(mapped[:, 0] - corners[:, 0])
+    if np.abs(mapped - corners - offset[:, None]).max() > LATTICE_TOL_VOXELS:
+        return None
+    return offset.astype(np.int64)
+
+
+class _Program:
+    """The chain as kernel arguments (see :func:`nl_unwarp._kernels.fold_chain`).
+
+    Buffers are flat x-fastest views of the steps' arrays (Fortran-ordered
+    arrays are not copied); the object keeps them alive while a kernel runs.
+    """
+
+    def __init__(self, steps: Sequence[Step], target_shape, target_affine: np.ndarray) -> None:
+        self.rows: list[tuple[int, ...]] = []
+        self.affines: list[np.ndarray] = []
+        self.buffers: list[np.ndarray] = []
+        self.dims: list[tuple[int, int, int]] = []
+        self.maps: list[np.ndarray] = []
+        self.target_shape = tuple(target_shape)
+        # While only affines were applied, points are ``linear @ [i, j, k, 1]``.
+        self.linear: np.ndarray | None = np.asarray(target_affine, float)
+        pending: FactorStep | None = None  # a factor map waiting to pair with the next field
+        for step in steps:
+            if isinstance(step, FieldStep):
+                if step.jacobian is not None:
+                    self._flush(pending)
+                    pending = FactorStep(step.jacobian, step.affine)
+                self._field(step, pending)
+            else:
+                self._flush(pending)
+                if isinstance(step, AffineStep):
+                    self._affine(step)
+            pending = step if isinstance(step, FactorStep) else None
+        self._flush(pending)
+
+    def _buffer(self, values: np.ndarray, affine: np.ndarray) -> int:
+        self.buffers.append(values.ravel(order="F"))
+        self.dims.append(tuple(values.shape[:3]))
+        self.maps.append(_world_to_index(affine))
+        return len(self.buffers) - 1
+
+    def _nodes(self, affine: np.ndarray) -> np.ndarray | None:
+        if self.linear is None:
+            return None
+        return _lattice_offset((np.linalg.inv(affine) @ self.linear)[:3], self.target_shape)
+
+    def _affine(self, step: AffineStep) -> None:
+        from ._kernels import STEP_AFFINE
+
+        self.rows.append((STEP_AFFINE, len(self.affines), 0, 0, 0, 0))
+        self.affines.append(step.matrix_ras[:3])
+        if self.linear is not None:
+            self.linear = step.matrix_ras @ self.linear
+
+    def _flush(self, factor: FactorStep | None) -> None:
+        """Emit a factor step that no field took."""
+        from ._kernels import STEP_FACTOR, STEP_FACTOR_NODES
+
+        if factor is None:
+            return
+        nodes = self._nodes(factor.affine)
+        index = self._buffer(factor.values, factor.affine)
+        if nodes is not None:
+            self.rows.append((STEP_FACTOR_NODES, index, 0, *nodes))
+        else:
+            self.rows.append((STEP_FACTOR, index, 0, 0, 0, 0))
+
+    def _field(self, step: FieldStep, factor: FactorStep | None) -> None:
+        from ._kernels import STEP_FIELD, STEP_FIELD_FACTOR, STEP_FIELD_NODES
+
+        nodes = self._nodes(step.affine)
+        shared = None
+        if factor is not None and nodes is None:
+            # A factor map on the field's lattice shares its interpolation weights.
+            shared = _lattice_offset((np.linalg.inv(factor.affine) @ step.affine)[:3], step.shape)
+        if factor is not None and shared is None:
+            self._flush(factor)
+        index = self._buffer(step.disp_ras_mm, step.affine)
+        if nodes is not None:
+            self.rows.append((STEP_FIELD_NODES, index, 0, *nodes))
+        elif shared is not None:
+            self.rows.append((STEP_FIELD_FACTOR, index, self._buffer(factor.values, factor.affine), *shared))
+        else:
+            self.rows.append((STEP_FIELD, index, 0, 0, 0, 0))
+        self.linear = None
+
+    def arguments(self) -> tuple:
+        """``program, affines, addresses, sizes, dims, maps`` for the kernels."""
+        buffers = self.buffers if self.buffers else [_NO_BUFFER]
+        return (np.asarray(self.rows, np.int64).reshape(-1, 6),
+                np.ascontiguousarray(self.affines if self.affines else np.zeros((1, 3, 4)), dtype=float),
+                np.array([b.ctypes.data for b in buffers], np.int64),
+                np.array([b.size for b in buffers], np.int64),
+                np.ascontiguousarray(self.dims if self.dims else np.ones((1, 3)), dtype=np.int64),
+                np.ascontiguousarray(self.maps if self.maps else np.zeros((1, 3, 4)), dtype=float))
+
+
+#: Typed stand-in for the kernels when a chain has no field and no factor map.
+_NO_BUFFER = np.zeros(1, np.float32)
+
+
+def _check_on_outside(on_outside: str) -> None:
+    if on_outside not in ON_OUTSIDE:
+        raise ValueError(f"on_outside must be one of {ON_OUTSIDE}, got {on_outside!r}")
+
+
+def _has_factor(steps: Sequence[Step]) -> bool:
+    return any(isinstance(s, FactorStep) or (isinstance(s, FieldStep) and s.jacobian is not None)
+               for s in steps)
 
 
 def compose_chain(
-    chain: Sequence[AffineStep | FieldStep | np.ndarray],
+    chain: Sequence[Step | np.ndarray],
     target_shape: Sequence[int],
     target_affine: np.ndarray,
     *,
@@ -348,7 +422,7 @@ def compose_chain(
 
     Parameters
     ----------
-    chain : sequence of AffineStep, FieldStep or (4, 4) ndarray
+    chain : sequence of AffineStep, FieldStep, FactorStep or (4, 4) ndarray
         In application order: ``chain[0]`` is applied first to a target point
         (antspyx ``transformlist`` / nitransforms ``TransformChain`` order; the
         reverse of ITK ``CompositeTransform``). A bare matrix is an affine step.
@@ -366,6 +440,7 @@ def compose_chain(
     Returns
     -------
     ComposedField
+        Its arrays are Fortran-ordered (x fastest), as NIfTI stores them.
 
     Raises
     ------
@@ -381,31 +456,100 @@ def compose_chain(
         \\ \\text{or}\\ M_s \\mathbf x
 
     Field displacements are interpolated trilinearly between grid points (as
-    ITK does). Intensity factors (:attr:`FieldStep.jacobian`) are sampled
-    trilinearly at the point where their step is applied and multiplied.
+    ITK does). Factor maps are sampled trilinearly where they sit and multiplied.
     """
-    if on_outside not in ON_OUTSIDE:
-        raise ValueError(f"on_outside must be one of {ON_OUTSIDE}, got {on_outside!r}")
+    from ._kernels import fold_chain
+
+    _check_on_outside(on_outside)
     steps = [_as_step(s) for s in chain]
     shape = tuple(int(n) for n in target_shape)
     target_affine = np.asarray(target_affine, dtype=float)
-    target_map = np.ascontiguousarray(target_affine[:3])
-    disp = np.empty(shape + (3,), np.float32)
-    factor = np.empty(shape, np.float32)
-    missed = np.empty(shape, np.bool_)
-    program, affines, fields, jacs, use_jacs, maps = _pack(steps)
-    _chain_pass(target_map, program, affines, fields, jacs, use_jacs, maps, disp, factor, missed)
-    has_factor = bool(use_jacs.any())
-    if raw_shape is not None and raw_affine is not None and missed.any():
-        _keep_inside_raw(target_map, np.ascontiguousarray(np.linalg.inv(np.asarray(raw_affine, float))[:3]),
-                         np.asarray(raw_shape, dtype=np.int64), disp, missed)
-    result = ComposedField(disp, target_affine, factor if has_factor else None, missed)
-    _report_coverage(result, on_outside)
+    disp = np.empty(shape + (3,), np.float32, order="F")
+    factor = np.empty(shape, np.float32, order="F")
+    missed = np.empty(shape, np.bool_, order="F")
+    use_raw = raw_shape is not None and raw_affine is not None
+    raw_map = _world_to_index(np.asarray(raw_affine, float)) if use_raw else np.zeros((3, 4))
+    raw_dims = np.asarray(raw_shape if use_raw else (1, 1, 1), np.int64)
+    program = _Program(steps, shape, target_affine)
+    fold_chain(np.ascontiguousarray(target_affine[:3]), raw_map, raw_dims, use_raw, *program.arguments(),
+               disp, factor, missed)
+    result = ComposedField(disp, target_affine, factor if _has_factor(steps) else None, missed)
+    _report_coverage(result.uncovered_fraction, on_outside)
     return result
 
 
-def _report_coverage(result: ComposedField, on_outside: str) -> None:
-    frac = result.uncovered_fraction
+def resample_chain(
+    volume: np.ndarray,
+    raw_affine: np.ndarray,
+    chain: Sequence[Step | np.ndarray],
+    target_shape: Sequence[int],
+    target_affine: np.ndarray,
+    *,
+    order: int = 3,
+    fill: float = 0.0,
+    on_outside: str = "warn",
+) -> ResampledChain:
+    """Resample a raw 3-D volume once through a chain onto a target grid.
+
+    .. math:: I(\\mathbf p) = I_{raw}(T_{n-1}(\\cdots T_0(\\mathbf p)))\\; \\prod f
+
+    with :math:`\\prod f` the chain's factor maps, each sampled where it sits
+    (:class:`FactorStep`). The chain is followed from every target voxel and
+    the raw image sampled at the end in the same compiled pass (orders 0, 1
+    and 3): no composed field is stored. Other orders fold the field first
+    (:func:`compose_chain`) and resample through it.
+
+    Parameters
+    ----------
+    volume : (X', Y', Z') ndarray
+        Raw image (real).
+    raw_affine : (4, 4) ndarray
+        Its voxel -> RAS mm affine.
+    chain : sequence of steps
+        As for :func:`compose_chain` (application order).
+    target_shape, target_affine
+        Output grid.
+    order : int
+        B-spline order, 0-5 (3: cubic; mirror boundary as :mod:`nl_unwarp.resample`).
+    fill : float
+        Value outside the raw field of view.
+    on_outside : {"warn", "raise", "ignore"}
+        As for :func:`compose_chain`; only target points landing inside the
+        raw field of view count.
+
+    Returns
+    -------
+    ResampledChain
+        Data Fortran-ordered (x fastest), float32.
+    """
+    from ._kernels import fold_chain_and_sample
+
+    if order not in ORDERS:
+        raise ValueError(f"interpolation order must be one of {ORDERS}, got {order}")
+    _check_on_outside(on_outside)
+    steps = [_as_step(s) for s in chain]
+    shape = tuple(int(n) for n in target_shape)
+    target_affine = np.asarray(target_affine, dtype=float)
+    raw_affine = np.asarray(raw_affine, dtype=float)
+    volume = np.asarray(volume)
+    if order not in _FUSED_ORDERS:
+        composed = compose_chain(steps, shape, target_affine, raw_shape=volume.shape,
+                                 raw_affine=raw_affine, on_outside=on_outside)
+        data = resample_volume(volume, raw_affine, composed.disp_ras_mm, target_affine,
+                               jacobian=composed.factor, order=order, fill=fill)
+        return ResampledChain(data, composed.uncovered)
+    coef = prefilter(volume, order, memory_order="F")
+    out = np.empty(shape, np.float32, order="F")
+    missed = np.empty(shape, np.bool_, order="F")
+    program = _Program(steps, shape, target_affine)
+    fold_chain_and_sample(coef, order, float(fill), np.ascontiguousarray(target_affine[:3]),
+                          _world_to_index(raw_affine), *program.arguments(), out, missed)
+    result = ResampledChain(out, missed)
+    _report_coverage(result.uncovered_fraction, on_outside)
+    return result
+
+
+def _report_coverage(frac: float, on_outside: str) -> None:
     if frac == 0 or on_outside == "ignore":
         return
     message = (f"{100 * frac:.2f} % of the target grid's points meet a displacement field outside "
@@ -422,23 +566,35 @@ def affine_pull_points(matrix_ras: np.ndarray, points_ras_mm: np.ndarray) -> np.
     return np.asarray(points_ras_mm, float) @ m[:3, :3].T + m[:3, 3]
 
 
+def _trilinear(values: np.ndarray, affine: np.ndarray, points_ras_mm: np.ndarray):
+    """Plain numpy trilinear sampling with neighbours held at the edge; and the continuous index."""
+    pts = np.asarray(points_ras_mm, dtype=float).reshape(-1, 3)
+    inv = np.linalg.inv(affine)
+    idx = pts @ inv[:3, :3].T + inv[:3, 3]
+    dims = np.array(values.shape[:3])
+    clipped = np.clip(idx, -1.0, dims)
+    base = np.floor(clipped).astype(int)
+    frac = clipped - base
+    out = np.zeros((len(pts),) + values.shape[3:])
+    for corner in np.ndindex(2, 2, 2):
+        c = np.array(corner)
+        w = np.prod(np.where(c, frac, 1 - frac), axis=1)
+        nb = np.clip(base + c, 0, dims - 1)
+        out += w.reshape((-1,) + (1,) * (values.ndim - 3)) * values[nb[:, 0], nb[:, 1], nb[:, 2]]
+    return out, idx
+
+
 def sample_field(step: FieldStep, points_ras_mm: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Trilinear displacement of a field at (N, 3) RAS points, and whether each was inside.
 
     Plain numpy, written independently of the kernel (the tests compare both).
     """
-    pts = np.asarray(points_ras_mm, dtype=float).reshape(-1, 3)
-    inv = np.linalg.inv(step.affine)
-    idx = pts @ inv[:3, :3].T + inv[:3, 3]
-    dims = np.array(step.shape)
-    inside = np.all((idx >= -0.5) & (idx <= dims - 0.5), axis=1)
-    base = np.floor(idx).astype(int)
-    frac = idx - base
-    out = np.zeros((len(pts), 3))
-    for corner in np.ndindex(2, 2, 2):
-        c = np.array(corner)
-        w = np.prod(np.where(c, frac, 1 - frac), axis=1)
-        nb = np.clip(base + c, 0, dims - 1)
-        out += w[:, None] * step.disp_ras_mm[nb[:, 0], nb[:, 1], nb[:, 2]]
+    out, idx = _trilinear(step.disp_ras_mm, step.affine, points_ras_mm)
+    inside = np.all((idx >= -0.5) & (idx <= np.array(step.shape) - 0.5), axis=1)
     out[~inside] = 0.0
     return out, inside
+
+
+def sample_factor(step: FactorStep, points_ras_mm: np.ndarray) -> np.ndarray:
+    """Trilinear factor at (N, 3) RAS points, edge values beyond the grid (plain numpy reference)."""
+    return _trilinear(step.values, step.affine, points_ras_mm)[0]

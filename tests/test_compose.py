@@ -14,22 +14,36 @@ import logging
 import numpy as np
 import pytest
 import SimpleITK as sitk
+from scipy import ndimage
 
 from nl_unwarp.compose import (
     AffineStep,
     CoverageError,
+    FactorStep,
     FieldStep,
+    _Program,
     affine_pull_points,
     compose_chain,
     grid_with_margin,
+    resample_chain,
+    sample_factor,
     sample_field,
 )
+from nl_unwarp.resample import resample_volume
 
 #: Kernel vs reference, mm: both double precision, output float32 (~1e-6 of 10 mm).
 KERNEL_TOL_MM = 1e-5
 #: Ours vs ITK: same trilinear rule; ITK's output field is float64, ours float32.
 ITK_TOL_MM = 1e-5
 LPS = np.array([-1.0, -1.0, 1.0])
+#: Our one-pass sampling vs scipy.ndimage on the same points, intensities ~100 +- 40:
+#: float32 output (half an ulp, 4e-6) and chain points computed in a different
+#: order (~1e-12 voxel) times gradients of ~10 per voxel.
+SAMPLE_ATOL = 1e-4
+#: Nearest neighbour: voxels whose point lies within rounding of a voxel boundary
+#: may round either way (none measured; a few allowed).
+NEAREST_AGREEMENT = 0.995
+FILL = -3.5
 
 
 def _oblique(shape, zooms, angle_deg, centre) -> np.ndarray:
@@ -72,10 +86,12 @@ def _reference(chain, points):
         if isinstance(step, AffineStep):
             pts = affine_pull_points(step.matrix_ras, pts)
             continue
+        if isinstance(step, FactorStep):
+            factor *= sample_factor(step, pts)
+            continue
+        if step.jacobian is not None:  # the same as a factor map on the field's grid, just before it
+            factor *= sample_factor(FactorStep(step.jacobian, step.affine), pts)
         disp, inside = sample_field(step, pts)
-        if step.jacobian is not None:
-            jac_step = FieldStep(np.repeat(step.jacobian[..., None], 3, -1), step.affine)
-            factor *= np.where(inside, sample_field(jac_step, pts)[0][:, 0], 1.0)
         pts = pts + disp
         missed |= ~inside
     return pts.reshape(points.shape), factor.reshape(points.shape[:-1]), missed.reshape(points.shape[:-1])
@@ -105,6 +121,120 @@ def test_kernel_matches_plain_reference(target):
     np.testing.assert_allclose(result.factor, ref_factor, rtol=1e-5)
     np.testing.assert_array_equal(result.uncovered, ref_missed)
     assert result.uncovered.any() and not result.uncovered.all()  # both cases exercised
+
+
+def _shifted(affine, voxels) -> np.ndarray:
+    """The grid moved by ``voxels`` (3,) of its own voxel steps."""
+    out = affine.copy()
+    out[:3, 3] = affine[:3, :3] @ np.asarray(voxels, float) + affine[:3, 3]
+    return out
+
+
+def _layout_chain(layout, target_shape, target_affine):
+    """Chains that take each of the kernel's step kinds (checked by their program rows)."""
+    w, a, g = _chain()
+    g_bare = FieldStep(g.disp_ras_mm, g.affine)
+    if layout == "interpolated":  # field; affine; field with a factor on its own grid
+        return [w, a, g], {"field", "affine", "field+factor"}
+    if layout == "own-grid factor":  # a factor map on an unrelated oblique grid
+        shape = (12, 13, 11)
+        factor = FactorStep(np.random.default_rng(6).uniform(0.8, 1.2, shape),
+                            _oblique(shape, (3.2, 2.9, 3.6), 33.0, (2.0, 0.0, -1.0)))
+        return [w, a, factor, g_bare], {"field", "affine", "factor"}
+    if layout == "lattice factor":  # a smaller factor map on the field's lattice (a raw-grid Jacobian)
+        shape = (14, 15, 12)
+        factor = FactorStep(np.random.default_rng(7).uniform(0.8, 1.2, shape), _shifted(g.affine, (3, 4, 2)))
+        return [w, a, factor, g_bare], {"field", "affine", "field+factor"}
+    if layout == "nodes":  # a factor and a field on the target grid itself: read at their nodes
+        rng = np.random.default_rng(8)
+        factor = FactorStep(rng.uniform(0.8, 1.2, (16, 17, 15)), _shifted(target_affine, (-1, -1, -1)))
+        w_nodes = FieldStep(rng.normal(0.0, 2.0, tuple(target_shape) + (3,)), target_affine)
+        return [factor, w_nodes, a, g], {"factor@nodes", "field@nodes", "affine", "field+factor"}
+    # A field 0.01 voxel off the target grid: not a lattice, so interpolated.
+    near = FieldStep(np.random.default_rng(9).normal(0.0, 2.0, tuple(target_shape) + (3,)),
+                     _shifted(target_affine, (0.01, 0.0, 0.0)))
+    return [near, a, g], {"field", "affine", "field+factor"}
+
+
+LAYOUTS = ["interpolated", "own-grid factor", "lattice factor", "nodes", "near-lattice"]
+KIND_NAMES = {0: "affine", 1: "field", 2: "factor", 3: "field+factor", 4: "field@nodes", 5: "factor@nodes"}
+
+
+@pytest.mark.parametrize("layout", LAYOUTS)
+def test_every_step_kind_matches_plain_reference(layout):
+    shape = (14, 15, 13)
+    aff = _oblique(shape, (2.5, 3.0, 3.2), 20.0, (0, 0, 0))
+    chain, kinds = _layout_chain(layout, shape, aff)
+    assert {KIND_NAMES[row[0]] for row in _Program(chain, shape, aff).rows} == kinds
+    result = compose_chain(chain, shape, aff, on_outside="ignore")
+    points = _grid_points(shape, aff)
+    ref_pts, ref_factor, ref_missed = _reference(chain, points)
+    np.testing.assert_allclose(result.disp_ras_mm, ref_pts - points, atol=KERNEL_TOL_MM)
+    np.testing.assert_allclose(result.factor, ref_factor, rtol=1e-5)
+    np.testing.assert_array_equal(result.uncovered, ref_missed)
+    assert result.uncovered.any() and not result.uncovered.all()
+
+
+def _raw_image(shape, seed):
+    rng = np.random.default_rng(seed)
+    return (100.0 + 30.0 * ndimage.gaussian_filter(rng.normal(size=shape), 1.2, mode="wrap")
+            / 0.1).astype(np.float32)
+
+
+@pytest.mark.parametrize("order", [0, 1, 2, 3])
+@pytest.mark.parametrize("layout", ["interpolated", "nodes", "own-grid factor"])
+def test_resample_chain_matches_scipy_at_the_chain_points(order, layout):
+    """One pass (follow the chain, sample the raw image) against scipy.ndimage.map_coordinates
+    (mirror boundary, as ours) at the end points of the plain-numpy chain, times its factor."""
+    shape = (14, 15, 13)
+    aff = _oblique(shape, (2.5, 3.0, 3.2), 20.0, (0, 0, 0))
+    chain, _ = _layout_chain(layout, shape, aff)
+    raw_shape = (22, 20, 19)
+    raw_aff = _oblique(raw_shape, (2.6, 2.8, 3.0), -5.0, (0.5, -0.5, 1.0))
+    raw = _raw_image(raw_shape, 10)
+    got = resample_chain(raw, raw_aff, chain, shape, aff, order=order, fill=FILL, on_outside="ignore")
+    ref_pts, ref_factor, _ = _reference(chain, _grid_points(shape, aff))
+    inv = np.linalg.inv(raw_aff)
+    idx = np.moveaxis(ref_pts @ inv[:3, :3].T + inv[:3, 3], -1, 0)
+    coef = ndimage.spline_filter(raw.astype(float), order=order, mode="mirror") if order > 1 else raw
+    expected = ndimage.map_coordinates(coef, idx, order=order, mode="mirror", prefilter=False) * ref_factor
+    inside = np.all((idx >= -0.5) & (idx <= np.array(raw_shape)[:, None, None, None] - 0.5), axis=0)
+    expected = np.where(inside, expected, FILL)
+    assert 0.2 < inside.mean() < 1.0  # both the image and the fill are exercised
+    # Nearest neighbour: a voxel whose point sits on a rounding boundary may differ.
+    close = np.isclose(got.data, expected, rtol=0, atol=SAMPLE_ATOL)
+    assert close.mean() >= (NEAREST_AGREEMENT if order == 0 else 1.0)
+    # And the same as folding the field first, then resampling through it.
+    composed = compose_chain(chain, shape, aff, on_outside="ignore")
+    two_pass = resample_volume(raw, raw_aff, composed.disp_ras_mm, aff, jacobian=composed.factor,
+                               order=order, fill=FILL)
+    assert np.isclose(got.data, two_pass, rtol=0, atol=SAMPLE_ATOL).mean() >= (
+        NEAREST_AGREEMENT if order == 0 else 1.0)
+
+
+def test_resample_chain_counts_only_points_inside_the_raw_image():
+    shape = (6, 6, 6)
+    raw = np.diag([2.0, 2.0, 2.0, 1.0])
+    field = _field(shape, raw, 5, amplitude_mm=0.1)
+    target = raw.copy()
+    target[:3, 3] = -4.0
+    image = _raw_image(shape, 11)
+    result = resample_chain(image, raw, [field], shape, target, on_outside="raise")
+    assert not result.uncovered.any()  # off the field = off the raw grid: filled anyway
+    big = raw.copy()
+    big[:3, 3] = -10.0
+    with pytest.raises(CoverageError, match="identity"):
+        resample_chain(_raw_image((12, 12, 12), 12), big, [field], shape, target, on_outside="raise")
+
+
+def test_fields_in_nifti_order_are_not_copied():
+    disp = np.zeros((5, 6, 7, 3), np.float32, order="F")
+    jac = np.ones((5, 6, 7), np.float32, order="F")
+    step = FieldStep(disp, np.eye(4), jac)
+    assert np.shares_memory(step.disp_ras_mm, disp) and np.shares_memory(step.jacobian, jac)
+    assert np.shares_memory(FactorStep(jac, np.eye(4)).values, jac)
+    c_order = FieldStep(np.ascontiguousarray(disp), np.eye(4))
+    assert c_order.disp_ras_mm.flags.f_contiguous  # converted once, to NIfTI's order
 
 
 def _sitk_transform(step):
