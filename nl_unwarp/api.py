@@ -16,7 +16,7 @@ import numpy as np
 
 from . import __version__
 from .coil import CoilModel
-from .compose import grid_with_margin
+from .compose import FIELD_MARGIN_MM, grid_with_margin, margin_slices
 from .errors import InputError
 from .frames import DeviceFrame, offset_from_table_position
 from .io.atomic import OutputSet
@@ -24,7 +24,7 @@ from .io.coilfile import coil_sha256, load_coil
 from .io.itk import write_itk_field
 from .io.nifti import LoadedImage, load_image, write_image
 from .resample import correct_image
-from .warp import WarpField, compute_warp
+from .warp import WarpField, compute_warp, default_slice_axis
 
 __all__ = [
     "FIELD_MARGIN_MM",
@@ -38,13 +38,6 @@ __all__ = [
 ]
 
 log = logging.getLogger("nl_unwarp")
-
-#: Margin (mm) by which a field written for composition extends beyond the raw
-#: field of view on every side: ITK applies identity outside a field's grid
-#: without a warning (CONVENTIONS.md 4), and registration moves points there.
-#: Larger than the displacement of a gradient system inside its valid radius.
-FIELD_MARGIN_MM = 20.0
-
 
 @dataclass
 class FrameSpec:
@@ -94,8 +87,10 @@ class WarpOutputs:
     """Paths of the warp products (each optional).
 
     ``field_margin_mm`` grows the grid of the field file (only) by that margin
-    on every side, so that it covers the raw field of view for composition
-    (see :data:`FIELD_MARGIN_MM`); 0 writes it on the raw grid.
+    on every side, so that it covers the raw field of view when it is composed
+    with registration transforms or applied by ITK-style tools (default
+    :data:`FIELD_MARGIN_MM`); 0 writes it on the raw grid. The other maps are
+    always on the raw (reference) grid, voxel for voxel with the image.
     """
 
     field: str | Path | None = None
@@ -103,7 +98,11 @@ class WarpOutputs:
     magnitude: str | Path | None = None
     mask: str | Path | None = None
     summary: str | Path | None = None
-    field_margin_mm: float = 0.0
+    field_margin_mm: float = FIELD_MARGIN_MM
+
+    def __post_init__(self) -> None:
+        if not np.isfinite(self.field_margin_mm) or self.field_margin_mm < 0:
+            raise InputError("--field-margin", f"{self.field_margin_mm}: give a margin >= 0 mm")
 
 
 def displacement_table(coil: CoilModel, radii_mm=(50.0, 100.0, 150.0, 200.0),
@@ -167,13 +166,15 @@ def _warn_outside(warp: WarpField, image_path: str) -> None:
                     image_path, 100 * warp.outside_fraction)
 
 
-def _field_to_write(warp: WarpField, paths: WarpOutputs, coil: CoilModel,
-                    frame: DeviceFrame) -> WarpField:
-    """The warp on the grid of the field file: the raw grid grown by the margin."""
-    if not paths.field or paths.field_margin_mm <= 0:
-        return warp
-    shape, affine = grid_with_margin(warp.shape, warp.affine, paths.field_margin_mm)
-    return compute_warp(coil, shape, affine, frame, mode=warp.mode, slice_axis=warp.slice_axis)
+def _interior(grown: WarpField, shape: tuple[int, int, int], affine: np.ndarray) -> WarpField:
+    """The warp on the raw grid as views into the warp on the grown grid (the same numbers)."""
+    inner = margin_slices(shape, grown.shape)
+    return WarpField(
+        affine=np.asarray(affine, float), disp_ras_mm=grown.disp_ras_mm[inner],
+        jacobian=grown.jacobian[inner], outside_valid=grown.outside_valid[inner], mode=grown.mode,
+        slice_axis=grown.slice_axis, isocenter_ras_mm=grown.isocenter_ras_mm,
+        lattice_mm=grown.lattice_mm, interpolation_error_mm=grown.interpolation_error_mm,
+        jacobian_interpolation_error=grown.jacobian_interpolation_error)
 
 
 def _write_warp(outputs: OutputSet, warp: WarpField, paths: WarpOutputs, summary: dict,
@@ -192,15 +193,34 @@ def _write_warp(outputs: OutputSet, warp: WarpField, paths: WarpOutputs, summary
 
 
 def _warp_for(image: LoadedImage, coil: CoilModel, frame_spec: FrameSpec, mode: str,
-              slice_axis: int | None) -> tuple[WarpField, DeviceFrame, str]:
+              slice_axis: int | None, margin_mm: float = 0.0
+              ) -> tuple[WarpField, WarpField, DeviceFrame, str]:
+    """The warp on the image's grid, and on the grid of the field file.
+
+    With a margin the warp is computed once, on the grown grid, and the
+    image's grid takes its interior: the correction then uses exactly the
+    numbers written in the field file (what ITK-style tools apply).
+    """
     frame, origin = make_frame(frame_spec)
-    warp = compute_warp(coil, image.spatial_shape, image.affine, frame, mode=mode,
-                        slice_axis=slice_axis)
+    if slice_axis is None and mode != "full":
+        slice_axis = default_slice_axis(image.affine)
+    if margin_mm > 0:
+        shape, affine = grid_with_margin(image.spatial_shape, image.affine, margin_mm)
+        field = compute_warp(coil, shape, affine, frame, mode=mode, slice_axis=slice_axis)
+        warp = _interior(field, image.spatial_shape, image.affine)
+    else:
+        warp = field = compute_warp(coil, image.spatial_shape, image.affine, frame, mode=mode,
+                                    slice_axis=slice_axis)
     _warn_outside(warp, image.path)
     if warp.mode == "full" and 1 in image.spatial_shape:
         log.warning("%s: single-slice axis: the through-plane part of the displacement cannot "
                     "be resampled and is left uncorrected", image.path)
-    return warp, frame, origin
+    return warp, field, frame, origin
+
+
+def _margin(outputs: WarpOutputs | None) -> float:
+    """The field file's margin, if a field file is asked for."""
+    return float(outputs.field_margin_mm) if outputs is not None and outputs.field else 0.0
 
 
 def warp_file(reference: str | Path, coil: CoilModel | str | Path, outputs: WarpOutputs, *,
@@ -215,9 +235,9 @@ def warp_file(reference: str | Path, coil: CoilModel | str | Path, outputs: Warp
     """
     image = load_image(reference)
     model, coil_path = _load_coil_any(coil)
-    warp, dev_frame, origin = _warp_for(image, model, frame or FrameSpec(), mode, slice_axis)
+    warp, field, dev_frame, origin = _warp_for(image, model, frame or FrameSpec(), mode, slice_axis,
+                                               _margin(outputs))
     summary = warp_summary(warp, model, coil_path, dev_frame, origin)
-    field = _field_to_write(warp, outputs, model, dev_frame)
     with OutputSet() as out:
         _write_warp(out, warp, outputs, summary, field)
     return summary
@@ -251,7 +271,8 @@ def correct_file(
     if not (np.issubdtype(data.dtype, np.number) and data.dtype != np.bool_):
         raise InputError(image.path, f"header field datatype: cannot resample {data.dtype} data")
     model, coil_path = _load_coil_any(coil)
-    warp, dev_frame, origin = _warp_for(image, model, frame or FrameSpec(), mode, slice_axis)
+    warp, field, dev_frame, origin = _warp_for(image, model, frame or FrameSpec(), mode, slice_axis,
+                                               _margin(warp_outputs))
     if np.issubdtype(data.dtype, np.integer) and not keep_dtype:
         data = data.astype(np.float32)
     result = correct_image(data, image.affine, warp, order=order, jacobian=jacobian, fill=fill,
@@ -262,6 +283,5 @@ def correct_file(
     with OutputSet() as out:
         write_image(out, corrected, result, image.affine, header=image.header)
         if warp_outputs is not None:
-            _write_warp(out, warp, warp_outputs, summary,
-                        _field_to_write(warp, warp_outputs, model, dev_frame))
+            _write_warp(out, warp, warp_outputs, summary, field)
     return summary

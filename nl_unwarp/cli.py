@@ -14,6 +14,7 @@ import time
 from pathlib import Path
 
 from . import __version__
+from .compose import FIELD_MARGIN_MM
 from .errors import InputError
 from .frames import PATIENT_POSITIONS
 from .resample import ORDERS
@@ -76,6 +77,11 @@ def _add_warp_outputs(p: argparse.ArgumentParser, *, required_field: bool) -> No
     g.add_argument("--out-magnitude", help="displacement magnitude map, mm")
     g.add_argument("--out-mask", help="mask of voxels beyond the model's valid radius")
     g.add_argument("--out-summary", help="summary JSON")
+    g.add_argument("--field-margin", type=float, default=FIELD_MARGIN_MM, metavar="MM",
+                   help="the field's grid extends this far beyond the image on every side, so that "
+                        "registration and ITK-style tools (identity outside a field) never leave it; "
+                        f"the other maps stay on the image's grid (default: {FIELD_MARGIN_MM:g}; 0: "
+                        "the image's grid)")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -154,13 +160,31 @@ def _add_compose_parser(sub) -> None:
         "compose", help="fold transforms (affines, fields) into one field: resample the raw image once",
         description="Fold a chain of ITK affines (.txt/.tfm/.mat), ITK/ANTs displacement fields "
                     "(.nii[.gz]), ITK composite (.h5) or X5 chains into one ITK displacement field "
-                    "on a reference grid. ORDER: list the transforms " + COMPOSE_ORDER + ".")
+                    "on a reference grid, and/or resample the raw image once through the chain "
+                    "(--source, --out-image: no composed field is stored). ORDER: list the transforms "
+                    + COMPOSE_ORDER + ". INTENSITY: with --jacobian-map (our Jacobian output) the "
+                    "image is multiplied by det J where the last transform, the correction, is "
+                    "applied, as correcting and then registering would. COVERAGE: outside a field's "
+                    "grid, ITK and similar tools apply identity without a word; reference points that "
+                    "meet a field there are reported (--on-outside warn, the default) or refused "
+                    "(raise). Our fields carry a margin around the raw field of view for this reason.")
     p.add_argument("transforms", nargs="+", help="transform files, in application order (see above)")
-    p.add_argument("--reference", required=True, help="image whose grid the composed field is written on")
+    p.add_argument("--reference", required=True, help="image whose grid the outputs are on")
     p.add_argument("--out-field", help="composed ITK/ANTs displacement field (NIfTI, LPS, intent vector)")
     p.add_argument("--out-composite",
                    help="also write the chain un-folded: ITK composite (.h5) or X5 (.x5)")
-    p.add_argument("--raw", help="raw image: only target points landing inside it count as uncovered")
+    p.add_argument("--source", help="raw image to resample once through the chain (with --out-image)")
+    p.add_argument("--out-image", help="the source resampled once onto the reference grid (float32)")
+    p.add_argument("--jacobian-map",
+                   help="our correction's Jacobian determinant map: multiplies the resampled image by "
+                        "det J at each reference point's corrected-space position (applied when given)")
+    p.add_argument("--out-factor", help="that intensity factor on the reference grid (needs --jacobian-map), "
+                                        "for tools that apply --out-field")
+    p.add_argument("--order", type=int, choices=ORDERS, default=3,
+                   help="B-spline order of the resampling (default: 3, cubic)")
+    p.add_argument("--fill", type=float, default=0.0, help="value outside the raw field of view")
+    p.add_argument("--raw", help="raw image: only target points landing inside it count as uncovered "
+                                 "(default: --source)")
     p.add_argument("--on-outside", choices=("warn", "raise", "ignore"), default="warn",
                    help="target points meeting a field outside its grid (where ITK applies identity): "
                         "warn (default), fail, or ignore")
@@ -178,7 +202,7 @@ def _warp_outputs(args):
     from .api import WarpOutputs
 
     return WarpOutputs(args.out_field, args.out_jacobian, args.out_magnitude, args.out_mask,
-                       args.out_summary)
+                       args.out_summary, field_margin_mm=args.field_margin)
 
 
 def _slice_axis(args):
@@ -406,17 +430,33 @@ def _cmd_bids_app(args, progress: _Progress) -> None:
 
 
 def _cmd_compose(args, progress: _Progress) -> None:
-    from .interfaces.compose import compose_transform_files
+    from .interfaces.compose import compose_transform_files, resample_once_file
 
-    progress.step(f"composing {len(args.transforms)} transform file(s) onto the grid of {args.reference}")
-    summary = compose_transform_files(args.transforms, args.reference, out_field=args.out_field,
-                                      out_composite=args.out_composite, raw=args.raw,
-                                      on_outside=args.on_outside)
-    print(f"chain            {' -> '.join(summary['steps'])} (first applied first to a reference point)")
-    if args.out_field:
-        print(f"displacement     max {summary['max_displacement_mm']:.3f} mm; uncovered "
-              f"{100 * summary['uncovered_fraction']:.2f} % of the reference grid")
-    for path in (args.out_field, args.out_composite):
+    if bool(args.source) != bool(args.out_image):
+        raise InputError("--source/--out-image", "give both: the raw image and where to write it resampled")
+    if not (args.out_image or args.out_field or args.out_composite or args.out_factor):
+        raise InputError("compose", "nothing to write: give --out-image, --out-field, --out-factor "
+                                    "or --out-composite")
+    if args.out_image:
+        progress.step(f"resampling {args.source} once through {len(args.transforms)} transform file(s)")
+        once = resample_once_file(args.source, args.transforms, args.out_image, reference=args.reference,
+                                  jacobian_map=args.jacobian_map, order=args.order, fill=args.fill,
+                                  on_outside=args.on_outside)
+        print(f"resampled once   {once['volumes']} volume(s); uncovered "
+              f"{100 * once['uncovered_fraction']:.2f} % of the reference grid")
+    if args.out_field or args.out_composite or args.out_factor:
+        progress.step(f"composing {len(args.transforms)} transform file(s) onto the grid of "
+                      f"{args.reference}")
+        summary = compose_transform_files(args.transforms, args.reference, out_field=args.out_field,
+                                          out_composite=args.out_composite, out_factor=args.out_factor,
+                                          raw=args.raw or args.source, jacobian_map=args.jacobian_map,
+                                          on_outside=args.on_outside)
+        print(f"chain            {' -> '.join(summary['steps'])} (first applied first to a reference "
+              "point)")
+        if "max_displacement_mm" in summary:
+            print(f"displacement     max {summary['max_displacement_mm']:.3f} mm; uncovered "
+                  f"{100 * summary['uncovered_fraction']:.2f} % of the reference grid")
+    for path in (args.out_image, args.out_field, args.out_factor, args.out_composite):
         if path:
             print(f"wrote            {path}")
 

@@ -257,7 +257,9 @@ def grid_with_margin(shape: Sequence[int], affine: np.ndarray, margin_mm: float
     """
     affine = np.asarray(affine, dtype=float)
     zooms = np.linalg.norm(affine[:3, :3], axis=0)
-    pad = np.ceil(float(margin_mm) / zooms - 1e-9).astype(int) if margin_mm > 0 else np.zeros(3, int)
+    # A margin that is a whole number of voxels stays one when the affine comes
+    # from a NIfTI header (float32: voxel sizes off by ~1e-7 of themselves).
+    pad = np.ceil(float(margin_mm) / zooms - 1e-5).astype(int) if margin_mm > 0 else np.zeros(3, int)
     new_shape = tuple(int(n + 2 * p) for n, p in zip(shape, pad, strict=True))
     new_affine = affine.copy()
     new_affine[:3, 3] = affine[:3, :3] @ (-pad.astype(float)) + affine[:3, 3]

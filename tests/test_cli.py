@@ -329,7 +329,9 @@ def test_failure_while_writing_leaves_no_partial_files(tmp_path, outdir, image_p
 def test_warp_writes_field_jacobian_magnitude_mask_summary(image_path, outdir, capsys, rng):
     paths = {k: outdir / f"{k}.nii" for k in ("field", "jacobian", "magnitude", "mask")}
     paths["summary"] = outdir / "summary.json"
+    # --field-margin 0: the field on the image's own grid, voxel for voxel (the default adds a margin).
     code, out, err = _run(["warp", image_path, "--coil", demo_coil_path(), *OFFSET_ARGS,
+                           "--field-margin", "0",
                            *[a for k, p in paths.items() for a in (f"--out-{k}", p)]], capsys)
     assert code == 0, err
     assert f"wrote            {paths['field']}" in out
@@ -410,8 +412,9 @@ def test_correct_int16_keep_dtype_3d_and_4d(volumes, tmp_path, outdir, rng, caps
     raw = np.round(_smooth(rng, shape, mean=1500.0, spread=1200.0)).astype(np.int16)
     src = _save(tmp_path / "raw.nii.gz", raw, affine)
     code, out, err = _run(["--quiet", "correct", src, outdir / "corrected.nii.gz", "--coil",
-                           demo_coil_path(), *OFFSET_ARGS, "--keep-dtype", "--out-field",
-                           outdir / "field.nii", "--out-jacobian", outdir / "jac.nii"], capsys)
+                           demo_coil_path(), *OFFSET_ARGS, "--keep-dtype", "--field-margin", "0",
+                           "--out-field", outdir / "field.nii", "--out-jacobian", outdir / "jac.nii"],
+                          capsys)
     assert code == 0, err
     img = nib.load(str(outdir / "corrected.nii.gz"))
     assert img.get_data_dtype() == np.int16 and img.shape == shape
@@ -431,7 +434,8 @@ def test_correct_throughplane_keeps_only_the_slice_normal(tmp_path, outdir, rng,
     raw = _smooth(rng, shape).astype(np.float32)
     src = _save(tmp_path / "raw.nii", raw, affine)
     code, _, err = _run(["--quiet", "correct", src, outdir / "corrected.nii", "--coil", demo_coil_path(),
-                         *OFFSET_ARGS, "--mode", "throughplane", "--out-field", outdir / "field.nii",
+                         *OFFSET_ARGS, "--mode", "throughplane", "--field-margin", "0",
+                         "--out-field", outdir / "field.nii",
                          "--out-jacobian", outdir / "jac.nii", "--out-summary", outdir / "s.json"], capsys)
     assert code == 0, err
     summary = json.loads((outdir / "s.json").read_text())

@@ -4,6 +4,12 @@ Layout facts are checked with nibabel against the NIfTI-1 standard and
 CONVENTIONS.md section 4; the meaning of the file is checked by letting
 SimpleITK and antspyx resample the raw image through it: times our Jacobian
 map, that must reproduce our corrected image.
+
+Both layouts we write are covered: the field on the raw grid (margin 0) and
+the default, the raw grid grown by ``FIELD_MARGIN_MM`` on every side (so that
+ITK, which applies identity outside a field, never leaves it). ITK resamples
+onto the raw grid in both; with the margin its trilinear interpolation of the
+field falls on the field's nodes, as without.
 """
 
 from __future__ import annotations
@@ -14,7 +20,8 @@ import pytest
 from scipy import ndimage
 from scipy.spatial.transform import Rotation
 
-from nl_unwarp.api import FrameSpec, WarpOutputs, correct_file
+from nl_unwarp.api import FIELD_MARGIN_MM, FrameSpec, WarpOutputs, correct_file
+from nl_unwarp.compose import grid_with_margin, margin_slices
 from nl_unwarp.demo import demo_coil_path
 from nl_unwarp.errors import InputError
 from nl_unwarp.frames import DeviceFrame
@@ -73,10 +80,14 @@ def _save(data, affine, path, intent=None):
     nib.save(img, str(path))
 
 
-@pytest.fixture(scope="module")
-def case(tmp_path_factory):
-    """Raw image, and our corrections (cubic and trilinear) with field and Jacobian."""
+@pytest.fixture(scope="module", params=[0.0, FIELD_MARGIN_MM], ids=["raw-grid", "margin"])
+def case(tmp_path_factory, request):
+    """Raw image, and our corrections (cubic and trilinear) with field and Jacobian.
+
+    The field file is on the raw grid (margin 0) or on the raw grid grown by the margin.
+    """
     root = tmp_path_factory.mktemp("itk")
+    (root / "margin").write_text(repr(request.param))
     rng = np.random.default_rng(2024)
     vol = ndimage.gaussian_filter(rng.normal(size=SHAPE), 1.5, mode="wrap")
     vol = (100.0 + 30.0 * vol / np.abs(vol).max()).astype(np.float32)
@@ -85,13 +96,21 @@ def case(tmp_path_factory):
     for order in (1, 3):
         correct_file(root / "raw.nii.gz", demo_coil_path(), root / f"corrected{order}.nii.gz",
                      warp_outputs=WarpOutputs(field=root / f"field{order}.nii.gz",
-                                              jacobian=root / f"jacobian{order}.nii.gz"),
+                                              jacobian=root / f"jacobian{order}.nii.gz",
+                                              field_margin_mm=request.param),
                      frame=frame, order=order)
     return root
 
 
 def _array(path):
     return np.asarray(nib.load(str(path)).dataobj)
+
+
+def _field_grid(root):
+    """Shape and affine of the field file's grid, and where the raw grid sits in it."""
+    raw_affine = nib.load(str(root / "raw.nii.gz")).affine  # as stored (float32)
+    shape, affine = grid_with_margin(SHAPE, raw_affine, float((root / "margin").read_text()))
+    return shape, affine, margin_slices(SHAPE, shape)
 
 
 def _interior(a):
@@ -121,20 +140,25 @@ def test_field_file_layout(case, demo_coil):
     img = nib.load(str(case / "field3.nii.gz"))
     data = np.asanyarray(img.dataobj)
     hdr = img.header
+    shape, field_affine, inner = _field_grid(case)
     # ITK's NIfTI reader: a displacement field is 5-D with dim[4] = 1 and
     # dim[5] = 3 vector components (CONVENTIONS.md section 4, verified there).
-    assert data.shape == SHAPE + (1, 3)
+    assert data.shape == shape + (1, 3)
     assert data.dtype == np.float32
     assert int(hdr["intent_code"]) == NIFTI_INTENT_VECTOR
     assert int(hdr["qform_code"]) == 1 and int(hdr["sform_code"]) == 1
+    np.testing.assert_allclose(img.get_qform(), field_affine, atol=AFFINE_ATOL)
+    np.testing.assert_allclose(img.get_sform(), field_affine, atol=AFFINE_ATOL)
+    # The raw grid's voxels are the field's interior voxels (same world points).
     raw_affine = nib.load(str(case / "raw.nii.gz")).affine
-    np.testing.assert_allclose(img.get_qform(), raw_affine, atol=AFFINE_ATOL)
-    np.testing.assert_allclose(img.get_sform(), raw_affine, atol=AFFINE_ATOL)
+    offset = np.array([sl.start for sl in inner], float)
+    np.testing.assert_allclose(img.affine[:3, :3] @ offset + img.affine[:3, 3], raw_affine[:3, 3],
+                               atol=AFFINE_ATOL)
     # Vectors are LPS = diag(-1, -1, 1) RAS (DICOM PS3.3 C.7.6.2.1.1): compare
     # with the RAS warp computed on the same grid.
-    warp = compute_warp(demo_coil, SHAPE, raw_affine,
+    warp = compute_warp(demo_coil, shape, field_affine,
                         DeviceFrame("HFS", OFFSET_MM))
-    voxel = (31, 5, 22)
+    voxel = tuple(int(v) for v in np.array((31, 5, 22)) + offset)
     ras = warp.disp_ras_mm[voxel]
     assert np.linalg.norm(ras[:2]) > 0.5
     np.testing.assert_array_equal(data[voxel][0], ras * np.array([-1, -1, 1], np.float32))
@@ -212,9 +236,10 @@ def test_itk_reads_intent_1006_as_ras(case, tmp_path):
     img = nib.load(str(case / "field3.nii.gz"))
     data = np.asanyarray(img.dataobj)
     _save(data, img.affine, tmp_path / "f1006.nii.gz", intent=NIFTI_INTENT_DISPVECT)
-    stored = data[7, 6, 5, 0].astype(float)
+    voxel = tuple(int(sl.start) + v for sl, v in zip(_field_grid(case)[2], (7, 6, 5), strict=True))
+    stored = data[voxel + (0,)].astype(float)
     assert np.abs(stored[:2]).min() > 0.05
-    as_1007 = sitk.ReadImage(str(case / "field3.nii.gz"), sitk.sitkVectorFloat64).GetPixel(7, 6, 5)
-    as_1006 = sitk.ReadImage(str(tmp_path / "f1006.nii.gz"), sitk.sitkVectorFloat64).GetPixel(7, 6, 5)
+    as_1007 = sitk.ReadImage(str(case / "field3.nii.gz"), sitk.sitkVectorFloat64).GetPixel(*voxel)
+    as_1006 = sitk.ReadImage(str(tmp_path / "f1006.nii.gz"), sitk.sitkVectorFloat64).GetPixel(*voxel)
     np.testing.assert_allclose(as_1007, stored, rtol=1e-7)
     np.testing.assert_allclose(as_1006, stored * [-1, -1, 1], rtol=1e-7)

@@ -4,7 +4,9 @@ The gradient-nonlinearity distortion is fixed in the scanner frame, so one
 correction field (on the raw grid grown by a margin) serves every volume.
 Head motion is estimated between *corrected* volumes (antspyx rigid
 registration of each to the first); then, for each volume, its motion
-affine is composed with the correction and the raw volume is resampled once.
+affine is composed with the correction and the raw volume is resampled once,
+its intensities multiplied by the correction's Jacobian determinant at each
+voxel's corrected-space position (``--no-jacobian`` leaves the factor out).
 
 Run::
 
@@ -85,13 +87,18 @@ def estimate_motion(series: str) -> list:
     return out
 
 
-def init_functional_wf(*, order: int = 3, name: str = "functional_wf") -> pe.Workflow:
+def init_functional_wf(*, order: int = 3, jacobian: bool = True, write_fields: bool = False,
+                       name: str = "functional_wf") -> pe.Workflow:
     """Motion and distortion correction of a series in one resampling per volume.
 
     Parameters
     ----------
     order : int
         B-spline order of the single resampling.
+    jacobian : bool
+        Multiply by the correction's Jacobian determinant (intensity preservation).
+    write_fields : bool
+        Also write one composed displacement field per volume.
     name : str
 
     Inputs
@@ -112,7 +119,7 @@ def init_functional_wf(*, order: int = 3, name: str = "functional_wf") -> pe.Wor
     correction_field
         Our correction, covering the raw field of view with a margin.
     composed_fields
-        One composed field per volume.
+        One composed field per volume (``write_fields``).
     """
     wf = pe.Workflow(name=name)
     inputnode = pe.Node(niu.IdentityInterface(["bold", "coil_model", "isocenter_offset_mm"]),
@@ -123,7 +130,9 @@ def init_functional_wf(*, order: int = 3, name: str = "functional_wf") -> pe.Wor
     corrected = pe.Node(ApplyWarp(jacobian=False), name="corrected")
     motion = pe.Node(niu.Function(function=estimate_motion, input_names=["series"],
                                   output_names=["transforms"]), name="motion")
-    once = init_series_resample_once_wf(order=order)
+    once = init_series_resample_once_wf(order=order, write_fields=write_fields)
+    if jacobian:
+        wf.connect(field, "out_jacobian", once, "inputnode.jacobian_map")
     wf.connect([
         (inputnode, field, [("bold", "reference"), ("coil_model", "coil_model"),
                             ("isocenter_offset_mm", "isocenter_offset_mm")]),
@@ -151,16 +160,20 @@ def make_demo_inputs(outdir: str | Path, *, shape=DEMO_SHAPE, voxel_mm: float = 
             "isocenter_offset_mm": list(DEMO_ISOCENTER_OFFSET_MM)}
 
 
-def run(outdir: str | Path, inputs: dict, *, order: int = 3) -> dict:
+def run(outdir: str | Path, inputs: dict, *, order: int = 3, jacobian: bool = True,
+        write_fields: bool = False) -> dict:
     """Build and run the pipeline in ``outdir``; returns the output paths."""
-    wf = init_functional_wf(order=order)
+    wf = init_functional_wf(order=order, jacobian=jacobian, write_fields=write_fields)
     wf.base_dir = str(Path(outdir).resolve() / "work")
     for key, value in inputs.items():
         setattr(wf.inputs.inputnode, key, value)
     results = node_results(wf.run())
-    return {"bold_once": results["resample"].out_file, "motion": results["motion"].transforms,
-            "correction_field": results["correction_field"].out_field,
-            "composed_fields": results["compose"].out_field}
+    out = {"bold_once": results["resample"].out_file, "motion": results["motion"].transforms,
+           "correction_field": results["correction_field"].out_field,
+           "correction_jacobian": results["correction_field"].out_jacobian}
+    if write_fields:
+        out["composed_fields"] = results["compose"].out_field
+    return out
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -170,6 +183,10 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--coil")
     parser.add_argument("--isocenter-offset", nargs=3, type=float, metavar=("DX", "DY", "DZ"))
     parser.add_argument("--order", type=int, default=3)
+    parser.add_argument("--no-jacobian", action="store_true",
+                        help="do not multiply by the correction's Jacobian determinant")
+    parser.add_argument("--write-fields", action="store_true",
+                        help="also write one composed displacement field per volume")
     args = parser.parse_args(argv)
     if args.bold:
         if not args.coil:
@@ -180,7 +197,8 @@ def main(argv: list[str] | None = None) -> int:
     else:
         print("functional: FICTIONAL demo data (synthetic series, demo gradient system)")
         inputs = make_demo_inputs(args.outdir)
-    for key, value in run(args.outdir, inputs, order=args.order).items():
+    for key, value in run(args.outdir, inputs, order=args.order, jacobian=not args.no_jacobian,
+                          write_fields=args.write_fields).items():
         print(f"{key:18s} {value}")
     return 0
 

@@ -3,7 +3,10 @@
 The gradient-nonlinearity correction is computed on the raw T1w's grid grown
 by a margin, applied once to make the image that is registered to the
 template (antspyx), then composed with the registration transforms so that
-the raw T1w is resampled onto the template exactly once.
+the raw T1w is resampled onto the template exactly once, its intensities
+multiplied by the correction's Jacobian determinant at each template voxel's
+corrected-space position (as correcting with the factor and then registering
+would). ``--no-jacobian`` leaves the factor out.
 
 Run::
 
@@ -139,8 +142,8 @@ def register(fixed: str, moving: str, transform_type: str = "Affine") -> list:
     return out
 
 
-def init_morphometry_wf(*, registration: str = "Affine", order: int = 3,
-                        name: str = "morphometry_wf") -> pe.Workflow:
+def init_morphometry_wf(*, registration: str = "Affine", order: int = 3, jacobian: bool = True,
+                        write_field: bool = False, name: str = "morphometry_wf") -> pe.Workflow:
     """Correct, register to a template, and resample the raw T1w once.
 
     Parameters
@@ -149,6 +152,10 @@ def init_morphometry_wf(*, registration: str = "Affine", order: int = 3,
         antspyx ``type_of_transform`` (``Affine``, ``SyN``, ...).
     order : int
         B-spline order of the single resampling.
+    jacobian : bool
+        Multiply by the correction's Jacobian determinant (intensity preservation).
+    write_field : bool
+        Also write the composed displacement field on the template grid.
     name : str
 
     Inputs
@@ -167,7 +174,8 @@ def init_morphometry_wf(*, registration: str = "Affine", order: int = 3,
     t1w_template
         The raw T1w resampled once onto the template.
     composed_field, composite
-        Composed displacement field (template grid) and the un-folded ITK composite.
+        Composed displacement field (template grid, with ``write_field``) and the
+        un-folded ITK composite.
     correction_field
         Our correction, covering the raw field of view with a margin.
     registration
@@ -180,12 +188,14 @@ def init_morphometry_wf(*, registration: str = "Affine", order: int = 3,
                                                 "correction_field", "registration"]),
                          name="outputnode")
     field = pe.Node(MakeComposableField(), name="correction_field")
-    # The corrected image is only for registration (on the field's grid, no Jacobian).
+    # The corrected image is only for registration (on the raw grid, no Jacobian).
     corrected = pe.Node(ApplyWarp(jacobian=False), name="corrected")
     reg = pe.Node(niu.Function(function=register, input_names=["fixed", "moving", "transform_type"],
                                output_names=["transforms"]), name="register")
     reg.inputs.transform_type = registration
-    once = init_resample_once_wf(order=order)
+    once = init_resample_once_wf(order=order, write_field=write_field)
+    if jacobian:
+        wf.connect(field, "out_jacobian", once, "inputnode.jacobian_map")
     wf.connect([
         (inputnode, field, [("t1w", "reference"), ("coil_model", "coil_model"),
                             ("isocenter_offset_mm", "isocenter_offset_mm")]),
@@ -216,18 +226,23 @@ def make_demo_inputs(outdir: str | Path, *, shape=DEMO_SHAPE, voxel_mm: float = 
             "isocenter_offset_mm": list(DEMO_ISOCENTER_OFFSET_MM)}
 
 
-def run(outdir: str | Path, inputs: dict, *, registration: str = "Affine", order: int = 3) -> dict:
+def run(outdir: str | Path, inputs: dict, *, registration: str = "Affine", order: int = 3,
+        jacobian: bool = True, write_field: bool = False) -> dict:
     """Build and run the pipeline in ``outdir``; returns the output paths."""
-    wf = init_morphometry_wf(registration=registration, order=order)
+    wf = init_morphometry_wf(registration=registration, order=order, jacobian=jacobian,
+                             write_field=write_field)
     wf.base_dir = str(Path(outdir) / "work")
     for key, value in inputs.items():
         setattr(wf.inputs.inputnode, key, value)
     results = node_results(wf.run())
-    return {"t1w_template": results["resample"].out_file,
-            "composed_field": results["compose"].out_field,
-            "composite": results["compose"].out_composite,
-            "correction_field": results["correction_field"].out_field,
-            "registration": results["register"].transforms}
+    out = {"t1w_template": results["resample"].out_file,
+           "composite": results["compose"].out_composite,
+           "correction_field": results["correction_field"].out_field,
+           "correction_jacobian": results["correction_field"].out_jacobian,
+           "registration": results["register"].transforms}
+    if write_field:
+        out["composed_field"] = results["compose"].out_field
+    return out
 
 
 def node_results(graph) -> dict:
@@ -244,6 +259,10 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--isocenter-offset", nargs=3, type=float, metavar=("DX", "DY", "DZ"))
     parser.add_argument("--registration", default="Affine")
     parser.add_argument("--order", type=int, default=3)
+    parser.add_argument("--no-jacobian", action="store_true",
+                        help="do not multiply by the correction's Jacobian determinant")
+    parser.add_argument("--write-field", action="store_true",
+                        help="also write the composed displacement field on the template grid")
     args = parser.parse_args(argv)
     if args.t1w:
         if not (args.coil and args.template):
@@ -254,7 +273,8 @@ def main(argv: list[str] | None = None) -> int:
     else:
         print("morphometry: FICTIONAL demo data (synthetic template and T1w, demo gradient system)")
         inputs = make_demo_inputs(args.outdir)
-    for key, value in run(args.outdir, inputs, registration=args.registration, order=args.order).items():
+    for key, value in run(args.outdir, inputs, registration=args.registration, order=args.order,
+                          jacobian=not args.no_jacobian, write_field=args.write_field).items():
         print(f"{key:18s} {value}")
     return 0
 

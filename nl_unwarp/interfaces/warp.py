@@ -13,6 +13,7 @@ from nipype.interfaces.base import (
     traits,
 )
 
+from ..compose import FIELD_MARGIN_MM
 from ..frames import PATIENT_POSITIONS
 from ..resample import ORDERS
 from ..warp import MODES
@@ -36,10 +37,16 @@ class _MakeWarpInputSpec(BaseInterfaceInputSpec):
                        desc="correct all of the displacement, only in the slice plane, or only normal to it")
     slice_axis = traits.Enum("auto", "i", "j", "k", usedefault=True,
                              desc="voxel axis normal to the slices (auto: the axis of largest spacing)")
+    field_margin_mm = traits.Range(low=0.0, value=FIELD_MARGIN_MM, usedefault=True,
+                                   desc="the field's grid extends this far (mm) beyond the reference on "
+                                        "every side, so that registration and ITK-style tools (identity "
+                                        "outside a field) never leave it; 0: the reference grid. The "
+                                        "other maps stay on the reference grid")
 
 
 class _MakeWarpOutputSpec(TraitedSpec):
-    out_field = File(exists=True, desc="ITK/ANTs displacement field (NIfTI, LPS mm, intent vector)")
+    out_field = File(exists=True, desc="ITK/ANTs displacement field (NIfTI, LPS mm, intent vector), on "
+                                       "the reference grid grown by field_margin_mm")
     out_jacobian = File(exists=True, desc="Jacobian determinant map")
     out_magnitude = File(exists=True, desc="displacement magnitude map, mm")
     out_summary = File(exists=True, desc="summary JSON (coil model SHA-256, isocenter, statistics)")
@@ -79,7 +86,8 @@ class MakeWarp(SimpleInterface):
             tuple(self.inputs.isocenter_offset_mm) if isdefined(self.inputs.isocenter_offset_mm) else None,
         )
         axis = None if self.inputs.slice_axis == "auto" else "ijk".index(self.inputs.slice_axis)
-        warp_file(self.inputs.reference, self.inputs.coil_model, WarpOutputs(**paths), frame=frame,
+        warp_file(self.inputs.reference, self.inputs.coil_model,
+                  WarpOutputs(**paths, field_margin_mm=self.inputs.field_margin_mm), frame=frame,
                   mode=self.inputs.mode, slice_axis=axis)
         self._results.update({f"out_{k}": v for k, v in paths.items()})
         return runtime
@@ -88,11 +96,12 @@ class MakeWarp(SimpleInterface):
 class _ApplyWarpInputSpec(BaseInterfaceInputSpec):
     in_file = File(exists=True, mandatory=True, desc="raw (distorted) image, 3-D or 4-D")
     field = File(exists=True, mandatory=True,
-                 desc="ITK displacement field on the output grid (from MakeWarp)")
+                 desc="ITK displacement field (from MakeWarp); it must cover the output grid")
+    reference = File(exists=True, desc="image whose grid the output is on (default: in_file's own grid)")
     jacobian = traits.Bool(True, usedefault=True,
                            desc="multiply by the Jacobian determinant (intensity preservation)")
-    jacobian_map = File(exists=True, desc="Jacobian determinant map (from MakeWarp); needed when "
-                                          "jacobian is on")
+    jacobian_map = File(exists=True, desc="Jacobian determinant map (from MakeWarp), sampled at the "
+                                          "output points; needed when jacobian is on")
     order = traits.Enum(3, *[o for o in ORDERS if o != 3], usedefault=True,
                         desc="B-spline interpolation order (3: cubic)")
     fill = traits.Float(0.0, usedefault=True, desc="value outside the raw field of view")
@@ -104,6 +113,11 @@ class _ApplyWarpOutputSpec(TraitedSpec):
 
 class ApplyWarp(SimpleInterface):
     """Resample an image through a displacement field: :math:`I_c(p) = I(p + d(p))\\,\\det J(p)`.
+
+    The output is on ``reference``'s grid (the input's own grid by default),
+    not on the field's: a field with a margin (MakeWarp's default) is sampled
+    at the output points, as ITK's ``DisplacementFieldTransform`` samples it
+    (trilinear; at the field's own nodes, exact).
 
     Examples
     --------
@@ -120,15 +134,17 @@ class ApplyWarp(SimpleInterface):
 
     def _run_interface(self, runtime):
         from ..errors import InputError
-        from ._apply import apply_field_file
+        from .compose import resample_once_file
 
         jac_map = self.inputs.jacobian_map if isdefined(self.inputs.jacobian_map) else None
         if self.inputs.jacobian and jac_map is None:
             raise InputError("ApplyWarp.jacobian_map", "jacobian is on: give the Jacobian map "
                                                        "(or set jacobian=False)")
         out = os.path.join(runtime.cwd, "corrected.nii.gz")
-        apply_field_file(self.inputs.in_file, self.inputs.field, out,
-                         jacobian_map=jac_map if self.inputs.jacobian else None,
-                         order=self.inputs.order, fill=self.inputs.fill)
+        # A one-step chain: the field, with the Jacobian map sampled where it is applied.
+        reference = self.inputs.reference if isdefined(self.inputs.reference) else None
+        resample_once_file(self.inputs.in_file, [self.inputs.field], out, reference=reference,
+                           jacobian_map=jac_map if self.inputs.jacobian else None,
+                           order=self.inputs.order, fill=self.inputs.fill)
         self._results["out_file"] = out
         return runtime
