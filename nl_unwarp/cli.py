@@ -214,10 +214,12 @@ def _print_warp_summary(s: dict) -> None:
     print(f"position         {s['patient_position']}; isocenter at RAS "
           f"{', '.join(f'{v:.1f}' for v in s['isocenter_ras_mm'])} mm ({s['isocenter_offset_from']})")
     print(f"mode             {s['mode']}")
-    print(f"displacement     max {s['displacement_max_mm']:.3f} mm, 99th pct {s['displacement_p99_mm']:.3f} mm")
+    print(f"displacement     max {s['displacement_max_mm']:.3f} mm, "
+          f"99th pct {s['displacement_p99_mm']:.3f} mm")
     print(f"jacobian         {s['jacobian_min']:.4f} .. {s['jacobian_max']:.4f}")
     print(f"beyond valid r.  {100 * s['outside_valid_fraction']:.1f} % of voxels")
-    print(f"warp lattice     {s['lattice_mm']:g} mm, interpolation error {s['interpolation_error_mm']:.2e} mm")
+    print(f"warp lattice     {s['lattice_mm']:g} mm, "
+          f"interpolation error {s['interpolation_error_mm']:.2e} mm")
 
 
 def _cmd_warp(args, progress: _Progress) -> None:
@@ -295,7 +297,8 @@ def _cmd_demo(args, progress: _Progress) -> None:
     _print_warp_summary(w)
     print("                      before      after")
     print(f"marker error max  {before['marker_error_max_mm']:9.3f}  {after['marker_error_max_mm']:9.3f}  mm")
-    print(f"marker error mean {before['marker_error_mean_mm']:9.3f}  {after['marker_error_mean_mm']:9.3f}  mm")
+    print(f"marker error mean {before['marker_error_mean_mm']:9.3f}  "
+          f"{after['marker_error_mean_mm']:9.3f}  mm")
     print(f"uniformity dev.   {100 * before['uniformity_max_deviation']:8.3f}%  "
           f"{100 * after['uniformity_max_deviation']:8.3f}%")
     print(f"outputs in {Path(args.outdir)}")
