@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from sampling import inside_fov, reference_coords
 from scipy import ndimage
 from scipy.spatial.transform import Rotation
 
@@ -46,24 +47,6 @@ def _smooth_disp(rng, shape, amplitude_mm):
 def _maps(raw_affine, out_affine):
     raw_inv = np.linalg.inv(raw_affine)
     return np.ascontiguousarray((raw_inv @ out_affine)[:3]), np.ascontiguousarray(raw_inv[:3, :3])
-
-
-def _reference_coords(raw_affine, out_affine, disp):
-    """Raw voxel coordinates (3, X, Y, Z) of p + d(p), p the output voxel centres (RAS)."""
-    shape = disp.shape[:3]
-    ijk = np.stack(np.meshgrid(*[np.arange(n) for n in shape], indexing="ij"), -1).astype(float)
-    points = ijk @ out_affine[:3, :3].T + out_affine[:3, 3] + disp.astype(float)
-    raw_inv = np.linalg.inv(raw_affine)
-    return np.moveaxis(points @ raw_inv[:3, :3].T + raw_inv[:3, 3], -1, 0)
-
-
-def _inside(coords, raw_shape):
-    """Inside the raw field of view: within half a voxel of the grid on every real axis."""
-    ok = np.ones(coords.shape[1:], dtype=bool)
-    for axis, n in enumerate(raw_shape):
-        if n > 1:
-            ok &= (coords[axis] >= -0.5) & (coords[axis] <= n - 0.5)
-    return ok
 
 
 def _coefficients(vol, order):
@@ -105,13 +88,13 @@ def test_pull_resample_matches_map_coordinates(order, use_jac, layout):
     coef = _coefficients(vol, order)
     got = _run(coef, disp, RAW_AFFINE, OUT_AFFINE, order, jac)
 
-    coords = _reference_coords(RAW_AFFINE, OUT_AFFINE, disp)
+    coords = reference_coords(RAW_AFFINE, OUT_AFFINE, disp)
     # scipy.ndimage.map_coordinates, mirror boundary, on the same coefficients.
     ref = ndimage.map_coordinates(coef.astype(float), coords, order=order, mode="mirror",
                                   prefilter=False)
     if use_jac:
         ref = ref * jac
-    inside = _inside(coords, RAW_SHAPE)
+    inside = inside_fov(coords, RAW_SHAPE)
     assert 0.05 < (~inside).mean() < 0.5  # both cases are exercised
     edge = inside & np.any((coords < 0) | (coords > np.array(RAW_SHAPE)[:, None, None, None] - 1),
                            axis=0)
@@ -154,11 +137,11 @@ def test_length_one_axis_is_constant(order):
     disp[..., :] += raw_affine[:3, 2] / 5.0 * 9.0  # 9 mm through-plane (1.8 slices)
     coef = _coefficients(vol, order)
     got = _run(coef, disp, raw_affine, raw_affine, order)
-    coords = _reference_coords(raw_affine, raw_affine, disp)
+    coords = reference_coords(raw_affine, raw_affine, disp)
     assert np.abs(coords[2]).min() > 1.0  # far off the slice
     ref = ndimage.map_coordinates(coef[..., 0].astype(float), coords[:2, ..., 0], order=order,
                                   mode="mirror", prefilter=False)
-    inside = _inside(coords, raw_shape)[..., 0]
+    inside = inside_fov(coords, raw_shape)[..., 0]
     assert inside.mean() > 0.8
     np.testing.assert_allclose(got[..., 0][inside], ref[inside], rtol=0, atol=KERNEL_ATOL)
     assert np.all(got[..., 0][~inside] == np.float32(FILL))

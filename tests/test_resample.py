@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from sampling import inside_fov, reference_coords
 from scipy import ndimage
 from scipy.spatial.transform import Rotation
 
@@ -43,23 +44,6 @@ def _smooth(rng, shape, sigma=1.5):
 def _disp(rng, shape, amplitude_mm):
     disp = np.stack([_smooth(rng, shape, 3.0) for _ in range(3)], -1)
     return (amplitude_mm * disp).astype(np.float32)
-
-
-def _coords(raw_affine, out_affine, disp):
-    """Raw voxel coordinates (3, X, Y, Z) of p + d(p) for output voxel centres p."""
-    shape = disp.shape[:3]
-    ijk = np.stack(np.meshgrid(*[np.arange(n) for n in shape], indexing="ij"), -1).astype(float)
-    points = ijk @ out_affine[:3, :3].T + out_affine[:3, 3] + disp.astype(float)
-    raw_inv = np.linalg.inv(raw_affine)
-    return np.moveaxis(points @ raw_inv[:3, :3].T + raw_inv[:3, 3], -1, 0)
-
-
-def _inside(coords, raw_shape):
-    ok = np.ones(coords.shape[1:], dtype=bool)
-    for axis, n in enumerate(raw_shape):
-        if n > 1:
-            ok &= (coords[axis] >= -0.5) & (coords[axis] <= n - 0.5)
-    return ok
 
 
 def _scipy_reference(volume, coords, order):
@@ -111,11 +95,11 @@ def test_resample_volume_matches_map_coordinates(order, dtype, use_jacobian):
     disp = _disp(rng, OUT_SHAPE, 3.0)
     jac = (1.0 + 0.2 * _smooth(rng, OUT_SHAPE, 2.0)).astype(np.float32) if use_jacobian else None
     got = resample_volume(vol, RAW_AFFINE, disp, OUT_AFFINE, jacobian=jac, order=order, fill=FILL)
-    coords = _coords(RAW_AFFINE, OUT_AFFINE, disp)
+    coords = reference_coords(RAW_AFFINE, OUT_AFFINE, disp)
     ref = _scipy_reference(vol, coords, order)
     if use_jacobian:
         ref = ref * jac
-    inside = _inside(coords, RAW_SHAPE)
+    inside = inside_fov(coords, RAW_SHAPE)
     assert 0.05 < (~inside).mean() < 0.5
     _assert_matches(got, ref, inside, np.abs(vol).max() * 1.2)
 
@@ -145,9 +129,9 @@ def test_keep_dtype_rounds_and_clips(dtype):
     assert (as_float > info.max).any() and (as_float < info.min).any()
     assert (np.abs(as_float - np.rint(as_float)) > 0.25).any()
     # And the float result itself is scipy's.
-    coords = _coords(RAW_AFFINE, OUT_AFFINE, disp)
+    coords = reference_coords(RAW_AFFINE, OUT_AFFINE, disp)
     ref = _scipy_reference(data, coords, 3) * jac
-    _assert_matches(as_float, ref, _inside(coords, RAW_SHAPE), 1.3 * max(-info.min, info.max))
+    _assert_matches(as_float, ref, inside_fov(coords, RAW_SHAPE), 1.3 * max(-info.min, info.max))
 
 
 def test_keep_dtype_float64_and_default_float32():
@@ -174,8 +158,8 @@ def test_complex_is_real_and_imaginary_parts(order):
                                                           fill=FILL))
     np.testing.assert_array_equal(got.imag, correct_image(data.imag, RAW_AFFINE, warp, order=order,
                                                           fill=FILL))
-    coords = _coords(RAW_AFFINE, OUT_AFFINE, disp)
-    inside = _inside(coords, RAW_SHAPE)
+    coords = reference_coords(RAW_AFFINE, OUT_AFFINE, disp)
+    inside = inside_fov(coords, RAW_SHAPE)
     for part, got_part in ((data.real, got.real), (data.imag, got.imag)):
         ref = _scipy_reference(part, coords, order) * warp.jacobian
         np.testing.assert_allclose(got_part[inside], ref[inside], rtol=0,
@@ -192,8 +176,8 @@ def test_4d_series_each_volume_matches_scipy():
                         progress=lambda k, n: done.append((k, n)))
     assert got.shape == OUT_SHAPE + (3,)
     assert done == [(1, 3), (2, 3), (3, 3)]
-    coords = _coords(RAW_AFFINE, OUT_AFFINE, disp)
-    inside = _inside(coords, RAW_SHAPE)
+    coords = reference_coords(RAW_AFFINE, OUT_AFFINE, disp)
+    inside = inside_fov(coords, RAW_SHAPE)
     for t in range(3):
         _assert_matches(got[..., t], _scipy_reference(data[..., t], coords, 3) * jac, inside, 160.0)
 
@@ -206,9 +190,9 @@ def test_jacobian_switch(jacobian):
     jac = (1.0 + 0.2 * _smooth(rng, OUT_SHAPE, 2.0)).astype(np.float32)
     got = correct_image(data, RAW_AFFINE, _warp(disp, OUT_AFFINE, jac), jacobian=jacobian,
                         fill=FILL)
-    coords = _coords(RAW_AFFINE, OUT_AFFINE, disp)
+    coords = reference_coords(RAW_AFFINE, OUT_AFFINE, disp)
     ref = _scipy_reference(data, coords, 3) * (jac if jacobian else 1.0)
-    _assert_matches(got, ref, _inside(coords, RAW_SHAPE), 160.0)
+    _assert_matches(got, ref, inside_fov(coords, RAW_SHAPE), 160.0)
 
 
 @pytest.mark.parametrize("order", ORDERS)
@@ -222,9 +206,9 @@ def test_single_slice_is_resampled_in_plane(order):
     disp = _disp(rng, shape, 2.0)
     disp += (affine[:3, 2] / 5.0 * 7.0).astype(np.float32)  # 7 mm through-plane
     got = resample_volume(vol, affine, disp, affine, order=order, fill=FILL)
-    coords = _coords(affine, affine, disp)
+    coords = reference_coords(affine, affine, disp)
     ref = _scipy_reference(vol[..., 0], coords[:2, ..., 0], order)
-    inside = _inside(coords, shape)[..., 0]
+    inside = inside_fov(coords, shape)[..., 0]
     assert inside.mean() > 0.8
     _assert_matches(got[..., 0], ref, inside, 130.0)
 
