@@ -1,31 +1,48 @@
 #!/usr/bin/env python
 """Resample once vs plain correction, 1 mm 256 x 256 x 176 grid, same run.
 
-* plain: the warp on the raw grid, then the corrected image (cubic B-spline,
-  Jacobian factor) -- what ``nl-unwarp correct`` does;
-* once: the warp on the raw grid grown by the field margin (the composable
-  field), folded with an affine and a second field (a registration warp on
-  the target grid) onto the 1 mm target grid, then the raw image resampled
-  once through the folded field (cubic B-spline, the correction's Jacobian
-  carried through the chain).
+* **plain**: the warp on the raw grid, then the corrected image (cubic
+  B-spline, Jacobian factor) -- what ``nl-unwarp correct`` computes;
+* **once**: the warp on the raw grid grown by the field margin (the field we
+  write for composition), then the raw image resampled once onto a 1 mm
+  target grid through ``[W, A, det J, G]``: a registration warp ``W`` on the
+  target grid, an affine ``A`` (6 degrees, 3 % scale), our correction ``G``
+  with its Jacobian factor, in one pass (:func:`nl_unwarp.compose.resample_chain`:
+  no composed field is stored);
+* **two-pass** (for reference): the composed field stored on the target grid
+  (:func:`~nl_unwarp.compose.compose_chain`), then resampled through
+  (:func:`~nl_unwarp.resample.resample_volume`), as a tool that needs the
+  field file would do.
 
-Both figures include computing the correction's warp; the second table
-gives the resampling stages alone (fields given). Target: once within
-1.25 x plain. Nothing is asserted: it prints the figures (best of N runs).
+The fields are x fastest (NIfTI's order), as our warps are made and as fields
+read from files are. Repetitions are interleaved (plain, once, two-pass, ...)
+so that the load of a shared machine falls on all alike; the tables give the
+median wall time and the median CPU time (user + system of the process, all
+threads) per stage. On a busy machine the CPU time is the steadier figure.
 
-Usage: python benchmarks/bench_compose.py [--repeats N]
+Target: once / plain <= 1.25. Two readings are printed: with the warps (the
+composable field computed in the timed section, on its larger grid) and with
+the fields given (the composable field exists, as in a pipeline that made it
+for registration), both against the plain correction including its warp.
+Nothing is asserted.
+
+Usage: python benchmarks/bench_compose.py [--repeats N] [--quick]
 """
 
 from __future__ import annotations
 
 import argparse
+import os
+import statistics
 import time
 
 import numpy as np
 
 SHAPE = (256, 256, 176)
+SHAPE_QUICK = (96, 96, 64)
 TARGET_RATIO = 1.25
 ISOCENTER_OFFSET_MM = (0.0, 10.0, 30.0)
+SEED = 0
 
 
 def _affine(shape, centre=(0.0, 0.0, 0.0)) -> np.ndarray:
@@ -34,81 +51,130 @@ def _affine(shape, centre=(0.0, 0.0, 0.0)) -> np.ndarray:
     return aff
 
 
-def _registration():
-    """An affine (6 degrees, 3 % scale) and a smooth 1 mm warp of a few mm on the target grid."""
+def _registration(shape):
+    """An affine (6 degrees, 3 % scale) and a smooth 1 mm warp of a few mm on the target grid.
+
+    The warp is Fortran-ordered (x fastest), as a field read from a NIfTI file is.
+    """
     a = np.deg2rad(6.0)
     m = np.eye(4)
     m[:3, :3] = np.array([[np.cos(a), -np.sin(a), 0], [np.sin(a), np.cos(a), 0], [0, 0, 1]]) * 1.03
     m[:3, 3] = [2.0, -3.0, 4.0]
-    ijk = np.stack(np.meshgrid(*[np.arange(n, dtype=np.float32) for n in SHAPE], indexing="ij"), -1)
-    warp = np.stack([3.0 * np.sin(ijk[..., 1] / 30.0), 2.0 * np.cos(ijk[..., 2] / 25.0),
-                     2.5 * np.sin(ijk[..., 0] / 40.0)], -1).astype(np.float32)
+    ijk = np.meshgrid(*[np.arange(n, dtype=np.float32) for n in shape], indexing="ij")
+    warp = np.empty(tuple(shape) + (3,), np.float32, order="F")
+    warp[..., 0] = 3.0 * np.sin(ijk[1] / 30.0)
+    warp[..., 1] = 2.0 * np.cos(ijk[2] / 25.0)
+    warp[..., 2] = 2.5 * np.sin(ijk[0] / 40.0)
     return m, warp
 
 
-def _best(fn, repeats):
-    times, out = [], None
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        out = fn()
-        times.append(time.perf_counter() - t0)
-    return min(times), out
+def _timed(fn):
+    wall, cpu = time.perf_counter(), time.process_time()
+    out = fn()
+    return out, time.perf_counter() - wall, time.process_time() - cpu
 
 
 def main() -> None:
     parser = argparse.ArgumentParser()
-    parser.add_argument("--repeats", type=int, default=3)
+    parser.add_argument("--repeats", type=int, default=5)
+    parser.add_argument("--quick", action="store_true", help=f"{SHAPE_QUICK} smoke run")
     args = parser.parse_args()
-    from nl_unwarp.api import FIELD_MARGIN_MM
-    from nl_unwarp.compose import AffineStep, FieldStep, compose_chain, grid_with_margin
+    import numba
+
+    from nl_unwarp.compose import (
+        FIELD_MARGIN_MM,
+        AffineStep,
+        FieldStep,
+        compose_chain,
+        grid_with_margin,
+        resample_chain,
+    )
     from nl_unwarp.demo import demo_coil_path
     from nl_unwarp.frames import DeviceFrame
     from nl_unwarp.io.coilfile import load_coil
     from nl_unwarp.resample import correct_image, resample_volume
     from nl_unwarp.warp import compute_warp
 
+    shape = SHAPE_QUICK if args.quick else SHAPE
     coil = load_coil(demo_coil_path())
     frame = DeviceFrame("HFS", ISOCENTER_OFFSET_MM)
-    raw_aff = _affine(SHAPE)
-    target_aff = _affine(SHAPE, (1.0, -2.0, 0.5))
-    rng = np.random.default_rng(0)
-    raw = rng.normal(100.0, 20.0, SHAPE).astype(np.float32)
-    matrix, warp_w = _registration()
-    w_step = FieldStep(warp_w, target_aff)
-    grown_shape, grown_aff = grid_with_margin(SHAPE, raw_aff, FIELD_MARGIN_MM)
+    raw_aff = _affine(shape)
+    target_aff = _affine(shape, (1.0, -2.0, 0.5))
+    raw = np.random.default_rng(SEED).normal(100.0, 20.0, shape).astype(np.float32)
+    matrix, warp_w = _registration(shape)
+    grown_shape, grown_aff = grid_with_margin(shape, raw_aff, FIELD_MARGIN_MM)
 
-    def plain_warp():
-        return compute_warp(coil, SHAPE, raw_aff, frame)
+    def chain_of(g):
+        # FieldStep.jacobian: the factor sampled where G is applied, sharing its weights.
+        return [FieldStep(warp_w, target_aff), AffineStep(matrix),
+                FieldStep(g.disp_ras_mm, g.affine, g.jacobian)]
 
-    def composable_warp():
-        return compute_warp(coil, grown_shape, grown_aff, frame)
-
-    # Warm up the compiled kernels on a small grid.
+    # Warm up (numba loads its cached kernels) on a small grid, same array layouts.
     small = compute_warp(coil, (16, 16, 16), _affine((16, 16, 16)), frame)
     correct_image(raw[:16, :16, :16], _affine((16, 16, 16)), small)
-    compose_chain([AffineStep(matrix), FieldStep(small.disp_ras_mm, small.affine, small.jacobian)],
-                  (8, 8, 8), _affine((8, 8, 8)), on_outside="ignore")
+    small_chain = [FieldStep(warp_w[:8, :8, :8], _affine((8, 8, 8))), AffineStep(matrix),
+                   FieldStep(small.disp_ras_mm, small.affine, small.jacobian)]
+    resample_chain(raw[:16, :16, :16], _affine((16, 16, 16)), small_chain, (8, 8, 8), _affine((8, 8, 8)),
+                   on_outside="ignore")
+    folded = compose_chain(small_chain, (8, 8, 8), _affine((8, 8, 8)), on_outside="ignore")
+    resample_volume(raw[:16, :16, :16], _affine((16, 16, 16)), folded.disp_ras_mm, _affine((8, 8, 8)),
+                    jacobian=folded.factor)
 
-    t_warp, warp = _best(plain_warp, args.repeats)
-    t_correct, _ = _best(lambda: correct_image(raw, raw_aff, warp), args.repeats)
-    t_gwarp, gwarp = _best(composable_warp, args.repeats)
-    g_step = FieldStep(gwarp.disp_ras_mm, gwarp.affine, gwarp.jacobian)
-    chain = [w_step, AffineStep(matrix), g_step]
-    t_compose, composed = _best(lambda: compose_chain(chain, SHAPE, target_aff, raw_shape=SHAPE,
-                                                      raw_affine=raw_aff, on_outside="ignore"),
-                                args.repeats)
-    t_apply, _ = _best(lambda: resample_volume(raw, raw_aff, composed.disp_ras_mm, target_aff,
-                                               jacobian=composed.factor, order=3), args.repeats)
-    plain = t_warp + t_correct
-    once = t_gwarp + t_compose + t_apply
-    print(f"grid {SHAPE} at 1 mm, field margin {FIELD_MARGIN_MM:g} mm -> {grown_shape}; "
-          f"best of {args.repeats}")
-    print(f"plain   warp {t_warp:6.2f} s + correct {t_correct:6.2f} s           = {plain:6.2f} s")
-    print(f"once    warp {t_gwarp:6.2f} s + compose {t_compose:6.2f} s + apply {t_apply:6.2f} s = "
-          f"{once:6.2f} s")
-    print(f"ratio once / plain (with warps)   {once / plain:5.2f}  (target {TARGET_RATIO})")
-    print(f"ratio compose+apply / correct     {(t_compose + t_apply) / t_correct:5.2f}  (fields given)")
-    print(f"uncovered target points           {100 * composed.uncovered_fraction:.3f} %")
+    stages = ("warp", "correct", "grown warp", "once", "compose", "apply")
+    wall = {s: [] for s in stages}
+    cpu = {s: [] for s in stages}
+
+    def record(stage, fn):
+        out, w, c = _timed(fn)
+        wall[stage].append(w)
+        cpu[stage].append(c)
+        return out
+
+    agreement = uncovered = 0.0
+    for _ in range(args.repeats):
+        warp = record("warp", lambda: compute_warp(coil, shape, raw_aff, frame))
+        record("correct", lambda w=warp: correct_image(raw, raw_aff, w))
+        grown = record("grown warp", lambda: compute_warp(coil, grown_shape, grown_aff, frame))
+        chain = chain_of(grown)
+        once = record("once", lambda c=chain: resample_chain(raw, raw_aff, c, shape, target_aff,
+                                                             on_outside="ignore"))
+        composed = record("compose", lambda c=chain: compose_chain(c, shape, target_aff, raw_shape=shape,
+                                                                   raw_affine=raw_aff, on_outside="ignore"))
+        two = record("apply", lambda f=composed: resample_volume(raw, raw_aff, f.disp_ras_mm, target_aff,
+                                                                  jacobian=f.factor))
+        agreement = max(agreement, float(np.abs(once.data - two).max()))
+        uncovered = once.uncovered_fraction
+        del warp, grown, chain, once, composed, two
+
+    med_w = {s: statistics.median(v) for s, v in wall.items()}
+    med_c = {s: statistics.median(v) for s, v in cpu.items()}
+    load = os.getloadavg()
+    print(f"grid {shape} at 1 mm; field margin {FIELD_MARGIN_MM:g} mm -> {grown_shape}; median of "
+          f"{args.repeats} interleaved runs; numba threads {numba.get_num_threads()}, cpus {os.cpu_count()}, "
+          f"load average {load[0]:.2f} {load[1]:.2f} {load[2]:.2f}")
+    print(f"{'stage':34s} {'wall s':>8s} {'cpu s':>8s}")
+    labels = {"warp": "compute_warp, raw grid", "correct": "correct_image (cubic, x det J)",
+              "grown warp": "compute_warp, grown grid", "once": "resample_chain (one pass)",
+              "compose": "compose_chain (stored field)", "apply": "resample_volume through it"}
+    for s in stages:
+        print(f"{labels[s]:34s} {med_w[s]:8.2f} {med_c[s]:8.2f}")
+
+    def ratios(parts, base):
+        return (sum(med_w[p] for p in parts) / sum(med_w[b] for b in base),
+                sum(med_c[p] for p in parts) / sum(med_c[b] for b in base))
+
+    plain = ("warp", "correct")
+    rows = [("once / plain, with the warps", ("grown warp", "once"), plain),
+            ("once / plain, fields given", ("once",), plain),
+            ("two-pass / plain, with the warps", ("grown warp", "compose", "apply"), plain),
+            ("two-pass / plain, fields given", ("compose", "apply"), plain),
+            ("once / correct_image (resampling alone)", ("once",), ("correct",))]
+    print(f"{'ratio (target ' + str(TARGET_RATIO) + ')':42s} {'wall':>6s} {'cpu':>6s}")
+    for label, parts, base in rows:
+        rw, rc = ratios(parts, base)
+        print(f"{label:42s} {rw:6.2f} {rc:6.2f}")
+    print(f"one pass vs two-pass: largest difference {agreement:.2e} (intensities ~100)")
+    print(f"uncovered target points: {100 * uncovered:.3f} %")
 
 
 if __name__ == "__main__":
