@@ -122,6 +122,90 @@ def test_affine_with_centre_written_by_simpleitk_is_read(tmp_path, suffix):
                                atol=POINT_TOL_MM)
 
 
+def _sitk_linear(kind: str):
+    """SimpleITK linear transforms of each type we read, with centres and non-trivial parameters."""
+    if kind == "translation":
+        return sitk.TranslationTransform(3, (3.0, -4.0, 5.0))
+    if kind in ("euler", "euler-zyx"):
+        tx = sitk.Euler3DTransform((10.0, 20.0, -30.0), 0.3, -0.2, 0.5, (3.0, -4.0, 5.0))
+        tx.SetComputeZYX(kind == "euler-zyx")
+        return tx
+    if kind == "versor":
+        tx = sitk.VersorRigid3DTransform((0.1, -0.2, 0.3, float(np.sqrt(1 - 0.14))), (3.0, -4.0, 5.0))
+        tx.SetCenter((10.0, 20.0, -30.0))
+        return tx
+    tx = sitk.Similarity3DTransform()
+    tx.SetParameters((0.1, -0.05, 0.2, 3.0, -4.0, 5.0, 1.1))
+    tx.SetCenter((10.0, 20.0, -30.0))
+    return tx
+
+
+LINEAR_KINDS = ["translation", "euler", "euler-zyx", "versor", "similarity"]
+
+
+@pytest.mark.parametrize("suffix", [".txt", ".mat"])
+@pytest.mark.parametrize("kind", LINEAR_KINDS)
+def test_linear_types_written_by_simpleitk_are_read(tmp_path, kind, suffix):
+    """Reference: SimpleITK maps the same points through the transform it wrote."""
+    tx = _sitk_linear(kind)
+    path = tmp_path / f"{kind}{suffix}"
+    sitk.WriteTransform(tx, str(path))
+    matrix = tio.read_itk_affine(path)
+    pts = _points(5, spread_mm=40.0)
+    expected = _sitk_points(tx, pts)
+    np.testing.assert_allclose(pts @ matrix[:3, :3].T + matrix[:3, 3], expected, atol=POINT_TOL_MM)
+    assert np.abs(expected - pts).max() > 1.0  # not an identity
+    # The same through the chain loader.
+    np.testing.assert_allclose(_chain_points(tio.load_chain(path), pts), expected, atol=POINT_TOL_MM)
+
+
+def test_composite_text_file_written_by_simpleitk_is_a_chain(tmp_path):
+    """ITK text composite: members in ITK order (the last applied first), as SimpleITK reads it."""
+    members = [_sitk_linear("similarity"), _sitk_linear("euler"), _sitk_linear("translation")]
+    path = tmp_path / "composite.txt"
+    sitk.WriteTransform(sitk.CompositeTransform(members), str(path))
+    reference = sitk.ReadTransform(str(path))
+    chain = tio.load_chain(path)
+    assert len(chain) == 3
+    pts = _points(6, spread_mm=40.0)
+    expected = _sitk_points(reference, pts)
+    np.testing.assert_allclose(_chain_points(chain, pts), expected, atol=POINT_TOL_MM)
+    matrix = tio.read_itk_affine(path)  # the composite's product
+    np.testing.assert_allclose(pts @ matrix[:3, :3].T + matrix[:3, 3], expected, atol=POINT_TOL_MM)
+    # Negative control: the members in file order would be the wrong chain.
+    wrong = _chain_points(chain[::-1], pts)
+    assert np.abs(wrong - expected).max() > 100 * POINT_TOL_MM
+
+
+def test_composite_h5_with_linear_members_is_read(tmp_path):
+    members = [_sitk_linear("versor"), _sitk_linear("euler-zyx")]
+    path = tmp_path / "composite.h5"
+    sitk.WriteTransform(sitk.CompositeTransform(members), str(path))
+    pts = _points(7, spread_mm=40.0)
+    np.testing.assert_allclose(_chain_points(tio.load_chain(path), pts),
+                               _sitk_points(sitk.ReadTransform(str(path)), pts), atol=POINT_TOL_MM)
+
+
+def test_ambiguous_and_unsupported_text_files_are_refused(tmp_path):
+    # Two transforms without a composite header: ITK does not define the order.
+    text = "#Insight Transform File V1.0\n"
+    for n in range(2):
+        text += (f"#Transform {n}\nTransform: AffineTransform_double_3_3\n"
+                 "Parameters: 1 0 0 0 1 0 0 0 1 1 2 3\nFixedParameters: 0 0 0\n")
+    (tmp_path / "list.txt").write_text(text)
+    with pytest.raises(InputError, match="CompositeTransform header"):
+        tio.load_chain(tmp_path / "list.txt")
+    scale = sitk.ScaleTransform(3, (1.1, 0.9, 1.2))
+    sitk.WriteTransform(scale, str(tmp_path / "scale.txt"))
+    with pytest.raises(InputError, match="not supported"):
+        tio.read_itk_affine(tmp_path / "scale.txt")
+    bad = text.split("#Transform 1")[0].replace("Parameters: 1 0 0 0 1 0 0 0 1 1 2 3",
+                                                 "Parameters: 1 0 0")
+    (tmp_path / "short.txt").write_text(bad)
+    with pytest.raises(InputError, match="expected 12 values"):
+        tio.read_itk_affine(tmp_path / "short.txt")
+
+
 def test_mat_layout_matches_simpleitk(tmp_path):
     # Same variable names, shapes and types as the MATLAB v4 file ITK writes.
     matrix = _random_affine(4)

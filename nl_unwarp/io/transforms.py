@@ -13,7 +13,11 @@ Formats and their conventions:
   fixed parameters (the centre ``c``), mapping LPS points ``y = M (x - c) + c + t``
   from the fixed (output) to the moving (input) space. The ``.mat`` file holds
   two double column vectors named after the transform type and ``fixed``
-  (checked against files SimpleITK writes, in the tests).
+  (checked against files SimpleITK writes, in the tests). Read too, through
+  their parameters: ``TranslationTransform`` (t), ``Euler3DTransform`` (three
+  angles, t; fixed: c and the ComputeZYX flag), ``VersorRigid3DTransform``
+  (versor, t) and ``Similarity3DTransform`` (versor, t, scale), and text files
+  holding a ``CompositeTransform`` of them (members in ITK order).
 * **ITK displacement field** in NIfTI: :mod:`nl_unwarp.io.itk` (re-exported).
 * **ITK composite** ``.h5`` (HDF5): ``/TransformGroup/0`` is the
   ``CompositeTransform_double_3_3``, members follow as ``/TransformGroup/1..``
@@ -60,6 +64,7 @@ __all__ = [
     "read_itk_affine",
     "read_itk_composite",
     "read_itk_field",
+    "read_itk_text_chain",
     "read_x5",
     "save_chain",
     "write_fsl_warp",
@@ -73,7 +78,6 @@ AFFINE_SUFFIXES = (".txt", ".tfm", ".mat")
 FIELD_SUFFIXES = (".nii", ".nii.gz")
 #: LPS <-> RAS on homogeneous coordinates (DICOM PS3.3 C.7.6.2.1.1 vs NIfTI-1).
 _FLIP4 = np.diag([-1.0, -1.0, 1.0, 1.0])
-_AFFINE_TYPES = ("AffineTransform", "MatrixOffsetTransformBase")
 _ITK_AFFINE_TYPE = "AffineTransform_double_3_3"
 _ITK_FIELD_TYPE = "DisplacementFieldTransform_double_3_3"
 _ITK_COMPOSITE_TYPE = "CompositeTransform_double_3_3"
@@ -96,12 +100,71 @@ def _itk_params_to_lps(params: np.ndarray, fixed: np.ndarray, src: str) -> np.nd
     if params.size != 12:
         raise InputError(src, f"transform parameters: expected 12 values (3 x 3 matrix and "
                               f"translation), got {params.size}")
+    return _centred(params[:9].reshape(3, 3), params[9:12], fixed)
+
+
+def _centred(matrix: np.ndarray, translation: np.ndarray, fixed: np.ndarray) -> np.ndarray:
+    """ITK's MatrixOffsetTransformBase map ``y = M (x - c) + c + t`` (c: the first three
+    fixed parameters, zero if absent) as a 4 x 4 LPS matrix."""
     centre = fixed[:3] if fixed.size >= 3 else np.zeros(3)
-    mat = params[:9].reshape(3, 3)
     out = np.eye(4)
-    out[:3, :3] = mat
-    out[:3, 3] = params[9:12] + centre - mat @ centre
+    out[:3, :3] = matrix
+    out[:3, 3] = translation + centre - matrix @ centre
     return out
+
+
+def _versor_matrix(versor: np.ndarray, src: str) -> np.ndarray:
+    """Rotation of a versor (the vector part of a unit quaternion, w = sqrt(1 - |v|^2) >= 0),
+    the standard quaternion rotation (ITK's itk::Versor)."""
+    x, y, z = versor
+    norm2 = x * x + y * y + z * z
+    if norm2 > 1.0 + 1e-9:
+        raise InputError(src, f"versor parameters {versor.tolist()}: norm {np.sqrt(norm2):.6f} > 1")
+    w = np.sqrt(max(0.0, 1.0 - norm2))
+    return np.array([[1 - 2 * (y * y + z * z), 2 * (x * y - z * w), 2 * (x * z + y * w)],
+                     [2 * (x * y + z * w), 1 - 2 * (x * x + z * z), 2 * (y * z - x * w)],
+                     [2 * (x * z - y * w), 2 * (y * z + x * w), 1 - 2 * (x * x + y * y)]])
+
+
+def _euler_matrix(angles: np.ndarray, zyx: bool) -> np.ndarray:
+    """ITK's Euler3DTransform rotation, radians: ``Rz Rx Ry`` (default), ``Rz Ry Rx`` when the
+    fourth fixed parameter (ComputeZYX) is set (recalled, and checked against SimpleITK in the tests)."""
+    cx, cy, cz = np.cos(angles)
+    sx, sy, sz = np.sin(angles)
+    rx = np.array([[1, 0, 0], [0, cx, -sx], [0, sx, cx]])
+    ry = np.array([[cy, 0, sy], [0, 1, 0], [-sy, 0, cy]])
+    rz = np.array([[cz, -sz, 0], [sz, cz, 0], [0, 0, 1]])
+    return rz @ ry @ rx if zyx else rz @ rx @ ry
+
+
+#: Linear 3-D ITK transforms read through their parameters: name -> number of parameters.
+_LINEAR_TYPES = {"AffineTransform": 12, "MatrixOffsetTransformBase": 12, "TranslationTransform": 3,
+                 "Euler3DTransform": 6, "VersorRigid3DTransform": 6, "Similarity3DTransform": 7}
+
+
+def _linear_type(kind: str) -> str | None:
+    """The base name of a supported linear 3-D transform type (``Name_double_3_3``), else None."""
+    base = kind.split("_")[0]
+    return base if base in _LINEAR_TYPES and kind.endswith("_3_3") else None
+
+
+def _linear_lps(kind: str, params: np.ndarray, fixed: np.ndarray, src: str) -> np.ndarray:
+    """A linear ITK transform (type name, parameters, fixed parameters) as a 4 x 4 LPS pull matrix."""
+    base = _linear_type(kind)
+    if base is None:
+        raise InputError(src, f"transform type {kind!r} is not supported (3-D affine, translation, "
+                              "Euler, versor-rigid or similarity, or a displacement field)")
+    if params.size != _LINEAR_TYPES[base]:
+        raise InputError(src, f"{kind} parameters: expected {_LINEAR_TYPES[base]} values, got {params.size}")
+    if base in ("AffineTransform", "MatrixOffsetTransformBase"):
+        return _itk_params_to_lps(params, fixed, src)
+    if base == "TranslationTransform":
+        return _centred(np.eye(3), params, np.zeros(0))
+    if base == "Euler3DTransform":
+        zyx = fixed.size >= 4 and bool(fixed[3])
+        return _centred(_euler_matrix(params[:3], zyx), params[3:6], fixed)
+    scale = params[6] if base == "Similarity3DTransform" else 1.0
+    return _centred(scale * _versor_matrix(params[:3], src), params[3:6], fixed)
 
 
 def _parse_itk_text(text: str, src: str) -> list[tuple[str, np.ndarray, np.ndarray]]:
@@ -134,8 +197,34 @@ def _read_mat_v4(path: Path) -> tuple[str, np.ndarray, np.ndarray]:
     return names[0], np.ravel(mat[names[0]]).astype(float), np.ravel(mat["fixed"]).astype(float)
 
 
+def _read_itk_linear_file(path: Path) -> list[tuple[str, np.ndarray, np.ndarray]]:
+    """(type, parameters, fixed) of the transforms of an ITK text or MATLAB file, in
+    application order (first applied first). A text file holds one transform or a
+    ``CompositeTransform`` followed by its members in ITK order (the last applied
+    first, as SimpleITK reads them); a list without that header is refused, since
+    ITK does not define its order (SimpleITK reads only its first transform)."""
+    src = str(path)
+    if not path.exists():
+        raise InputError(src, "transform file not found")
+    if path.suffix.lower() == ".mat":
+        return [_read_mat_v4(path)]
+    items = _parse_itk_text(path.read_text(errors="replace"), src)
+    if not items:
+        raise InputError(src, "no transform in the file")
+    if items[0][0].startswith("CompositeTransform"):
+        return items[1:][::-1]
+    if len(items) != 1:
+        raise InputError(src, f"{len(items)} transforms without a CompositeTransform header: their order "
+                              "is not defined; write them as an ITK composite")
+    return items
+
+
 def read_itk_affine(path: str | Path) -> np.ndarray:
-    """Read an ITK affine (``.txt``, ``.tfm`` or ``.mat``) as an RAS pull matrix.
+    """Read an ITK linear transform (``.txt``, ``.tfm`` or ``.mat``) as an RAS pull matrix.
+
+    Affine, translation, Euler 3-D, versor-rigid 3-D and similarity 3-D
+    transforms are read through their parameters (each ``y = M (x - c) + c + t``
+    in LPS about its centre ``c``); a composite of them gives their product.
 
     Returns
     -------
@@ -144,18 +233,20 @@ def read_itk_affine(path: str | Path) -> np.ndarray:
     """
     path = Path(path)
     src = str(path)
-    if not path.exists():
-        raise InputError(src, "transform file not found")
-    if path.suffix.lower() == ".mat":
-        kind, params, fixed = _read_mat_v4(path)
-    else:
-        items = _parse_itk_text(path.read_text(errors="replace"), src)
-        if len(items) != 1:
-            raise InputError(src, f"{len(items)} transforms in the file; expected one affine")
-        kind, params, fixed = items[0]
-    if not kind.startswith(_AFFINE_TYPES) or not kind.endswith("_3_3"):
-        raise InputError(src, f"transform type {kind!r}: expected a 3-D AffineTransform")
-    return affine_lps_to_ras(_itk_params_to_lps(params, fixed, src))
+    items = _read_itk_linear_file(path)
+    matrix = np.eye(4)
+    for kind, params, fixed in items:
+        if kind.startswith("DisplacementFieldTransform"):
+            raise InputError(src, f"transform type {kind!r}: a displacement field is not an affine")
+        matrix = _linear_lps(kind, params, fixed, src) @ matrix
+    return affine_lps_to_ras(matrix)
+
+
+def read_itk_text_chain(path: str | Path) -> list[AffineStep]:
+    """Read an ITK text/MATLAB transform file as a chain of affines (application order)."""
+    path = Path(path)
+    return [AffineStep(affine_lps_to_ras(_linear_lps(kind, params, fixed, str(path))))
+            for kind, params, fixed in _read_itk_linear_file(path)]
 
 
 def _lps_params(matrix_ras: np.ndarray) -> np.ndarray:
@@ -250,13 +341,10 @@ def read_itk_composite(path: str | Path) -> list[AffineStep | FieldStep]:
             params = np.asarray(grp[f"{pre}Parameters"][()], float).ravel()
             fixed = np.asarray(grp[f"{pre}FixedParameters"][()], float).ravel()
             where = f"{src}:/TransformGroup/{key}"
-            if kind.startswith(_AFFINE_TYPES):
-                steps.append(AffineStep(affine_lps_to_ras(_itk_params_to_lps(params, fixed, where))))
-            elif kind.startswith("DisplacementFieldTransform"):
+            if kind.startswith("DisplacementFieldTransform"):
                 steps.append(_field_from_itk(params, fixed, where))
             else:
-                raise InputError(where, f"transform type {kind!r} is not supported "
-                                        "(affine or displacement field)")
+                steps.append(AffineStep(affine_lps_to_ras(_linear_lps(kind, params, fixed, where))))
     return steps[::-1]
 
 
@@ -450,7 +538,7 @@ def load_chain(path: str | Path) -> list[AffineStep | FieldStep]:
     if not path.exists():
         raise InputError(str(path), "transform file not found")
     if suffix in AFFINE_SUFFIXES:
-        return [AffineStep(read_itk_affine(path))]
+        return read_itk_text_chain(path)
     if suffix in FIELD_SUFFIXES:
         disp, affine = read_itk_field(path)
         return [FieldStep(disp, affine)]
