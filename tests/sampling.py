@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+from scipy.spatial.transform import Rotation
 
 
 def reference_coords(raw_affine, out_affine, disp):
@@ -21,3 +22,12 @@ def inside_fov(coords, raw_shape):
         if n > 1:
             ok &= (coords[axis] >= -0.5) & (coords[axis] <= n - 0.5)
     return ok
+
+
+def oblique_affine(shape, zooms, euler_deg, centre_mm):
+    """Voxel -> RAS affine: rotated (x-y-z Euler, degrees), scaled, centred at ``centre_mm``."""
+    rot = Rotation.from_euler("xyz", euler_deg, degrees=True).as_matrix()
+    affine = np.eye(4)
+    affine[:3, :3] = rot @ np.diag(zooms)
+    affine[:3, 3] = np.asarray(centre_mm) - affine[:3, :3] @ ((np.asarray(shape) - 1) / 2)
+    return affine

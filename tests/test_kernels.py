@@ -9,9 +9,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from sampling import inside_fov, reference_coords
+from sampling import inside_fov, oblique_affine, reference_coords
 from scipy import ndimage
-from scipy.spatial.transform import Rotation
 
 from nl_unwarp._kernels import pull_resample
 
@@ -21,14 +20,6 @@ from nl_unwarp._kernels import pull_resample
 #: <= 1.2), and the order of the affine products (~1e-13 voxel).
 KERNEL_ATOL = 1e-5
 FILL = -7.5
-
-
-def _affine(shape, zooms, euler_deg, centre_mm):
-    rot = Rotation.from_euler("xyz", euler_deg, degrees=True).as_matrix()
-    affine = np.eye(4)
-    affine[:3, :3] = rot @ np.diag(zooms)
-    affine[:3, 3] = np.asarray(centre_mm) - affine[:3, :3] @ ((np.asarray(shape) - 1) / 2)
-    return affine
 
 
 def _smooth_volume(rng, shape):
@@ -64,11 +55,11 @@ def _run(coef, disp, raw_affine, out_affine, order, jac=None):
 
 
 RAW_SHAPE = (22, 20, 18)
-RAW_AFFINE = _affine(RAW_SHAPE, (2.0, 2.5, 3.0), (10.0, -5.0, 25.0), (4.0, -3.0, 8.0))
+RAW_AFFINE = oblique_affine(RAW_SHAPE, (2.0, 2.5, 3.0), (10.0, -5.0, 25.0), (4.0, -3.0, 8.0))
 # The output grid is rotated against the raw one and a little larger, so that
 # some of its points fall beyond the raw field of view.
 OUT_SHAPE = (24, 22, 19)
-OUT_AFFINE = _affine(OUT_SHAPE, (2.2, 2.4, 3.1), (-12.0, 8.0, 40.0), (5.0, -2.0, 7.0))
+OUT_AFFINE = oblique_affine(OUT_SHAPE, (2.2, 2.4, 3.1), (-12.0, 8.0, 40.0), (5.0, -2.0, 7.0))
 
 
 @pytest.mark.parametrize("order", [0, 1, 3])
@@ -131,7 +122,7 @@ def test_length_one_axis_is_constant(order):
     # the slice itself (scipy.ndimage also treats it so: a 2-D interpolation).
     rng = np.random.default_rng(11 + order)
     raw_shape, out_shape = (18, 16, 1), (18, 16, 1)
-    raw_affine = _affine(raw_shape, (2.0, 2.0, 5.0), (0.0, 20.0, 10.0), (0.0, 0.0, 12.0))
+    raw_affine = oblique_affine(raw_shape, (2.0, 2.0, 5.0), (0.0, 20.0, 10.0), (0.0, 0.0, 12.0))
     vol = _smooth_volume(rng, raw_shape)
     disp = _smooth_disp(rng, out_shape, 2.0)
     disp[..., :] += raw_affine[:3, 2] / 5.0 * 9.0  # 9 mm through-plane (1.8 slices)

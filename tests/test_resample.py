@@ -10,9 +10,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from sampling import inside_fov, reference_coords
+from sampling import inside_fov, oblique_affine, reference_coords
 from scipy import ndimage
-from scipy.spatial.transform import Rotation
 
 from nl_unwarp import resample
 from nl_unwarp.resample import ORDERS, correct_image, prefilter, resample_volume
@@ -26,14 +25,6 @@ RESAMPLE_RTOL = 1e-6
 #: largest coefficient (measured 3e-7 for order 5). Relative to max |coef|.
 PREFILTER_RTOL = 1e-6
 FILL = -3.25
-
-
-def _affine(shape, zooms, euler_deg, centre_mm):
-    rot = Rotation.from_euler("xyz", euler_deg, degrees=True).as_matrix()
-    affine = np.eye(4)
-    affine[:3, :3] = rot @ np.diag(zooms)
-    affine[:3, 3] = np.asarray(centre_mm) - affine[:3, :3] @ ((np.asarray(shape) - 1) / 2)
-    return affine
 
 
 def _smooth(rng, shape, sigma=1.5):
@@ -59,11 +50,11 @@ def _assert_matches(got, ref, inside, scale):
 
 
 RAW_SHAPE = (22, 20, 18)
-RAW_AFFINE = _affine(RAW_SHAPE, (2.0, 2.5, 3.0), (10.0, -5.0, 25.0), (4.0, -3.0, 8.0))
+RAW_AFFINE = oblique_affine(RAW_SHAPE, (2.0, 2.5, 3.0), (10.0, -5.0, 25.0), (4.0, -3.0, 8.0))
 # Output grid rotated against the raw grid and larger: it differs from the raw
 # affine (as when correcting onto another grid) and reaches outside the raw FOV.
 OUT_SHAPE = (24, 22, 19)
-OUT_AFFINE = _affine(OUT_SHAPE, (2.2, 2.4, 3.1), (-12.0, 8.0, 40.0), (5.0, -2.0, 7.0))
+OUT_AFFINE = oblique_affine(OUT_SHAPE, (2.2, 2.4, 3.1), (-12.0, 8.0, 40.0), (5.0, -2.0, 7.0))
 
 
 def _test_volume(rng, dtype):
@@ -201,7 +192,7 @@ def test_single_slice_is_resampled_in_plane(order):
     # field cannot move signal. Reference: 2-D map_coordinates on the slice.
     rng = np.random.default_rng(60 + order)
     shape = (20, 18, 1)
-    affine = _affine(shape, (2.0, 2.0, 5.0), (0.0, 20.0, 10.0), (0.0, 0.0, 12.0))
+    affine = oblique_affine(shape, (2.0, 2.0, 5.0), (0.0, 20.0, 10.0), (0.0, 0.0, 12.0))
     vol = 100.0 + 30.0 * _smooth(rng, shape)
     disp = _disp(rng, shape, 2.0)
     disp += (affine[:3, 2] / 5.0 * 7.0).astype(np.float32)  # 7 mm through-plane
