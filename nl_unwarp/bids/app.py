@@ -6,6 +6,7 @@ The CLI (``nl-unwarp BIDS_DIR OUTPUT_DIR participant``) parses its options into
 
 from __future__ import annotations
 
+import getpass
 import json
 import logging
 import os
@@ -100,6 +101,19 @@ def _set_threads(n: int | None) -> None:
             os.environ[var] = str(n)
 
 
+def _set_login_name() -> None:
+    """Give batch plugins a ``LOGNAME``: nipype's SLURM, SGE, PBS, LSF, OAR and Condor
+    plugins read ``os.environ["LOGNAME"]`` for job names and fail without it (cron jobs,
+    CI, containers run with an arbitrary uid have none)."""
+    if os.environ.get("LOGNAME"):
+        return
+    try:
+        name = getpass.getuser()
+    except (KeyError, OSError):  # no passwd entry for this uid (containers)
+        name = f"uid{os.getuid()}"
+    os.environ["LOGNAME"] = name
+
+
 def _worker_config(work_dir: Path) -> None:
     """nipype settings for worker processes, which read them at import (not from this process)."""
     folder = work_dir / "nipype_config"
@@ -163,6 +177,7 @@ def run(options: RunOptions, *, plan: Plan | None = None) -> tuple[list[dict], l
     for stale in remove_partial_files(output_dir):
         log.warning("removed %s, left by an interrupted run", stale)
     _set_threads(options.omp_nthreads)
+    _set_login_name()
     _worker_config(work_dir)
     workflow = init_bids_unwarp_wf(plan=plan, output_dir=output_dir, site_config=options.site_config,
                                    coil_override=options.coil_override, jacobian=options.jacobian,

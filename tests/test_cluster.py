@@ -1,0 +1,118 @@
+"""The BIDS pipeline on a real Slurm cluster through nipype's SLURM plugin, from our CLI.
+
+CI starts a one-node cluster on loopback with ``.ci/slurm-up`` (Debian's slurmctld, slurmd and
+munge). Where Slurm is not installed or no node is idle the cluster test is skipped and says
+why. The reference is a MultiProc run of the same command: the derivatives must be equal
+byte for byte.
+"""
+
+from __future__ import annotations
+
+import getpass
+import json
+import os
+import pwd
+import shutil
+import subprocess
+
+import pytest
+from bidsgen import make_study
+from bidsrun import child_env, cli_command, derivative_images, run_cli, tree_differences
+
+from nl_unwarp.bids import app
+
+#: A small selection: a 3D image corrected fully, a 2D one through-plane only, and a DWI
+#: (its bval/bvec travel along): every kind of derivative, few batch jobs.
+SELECTION = ("--participant-label", "01", "--session-label", "1", "--datatype", "anat", "dwi")
+IMAGES = 3
+#: Batch jobs at a time: the test cluster has as many slots as this machine has cores.
+MAX_JOBS = 2
+SINFO_TIMEOUT_S = 30
+
+
+def _sinfo(*fields: str) -> list[str]:
+    out = subprocess.run(["sinfo", "-h", *fields], capture_output=True, text=True,
+                         timeout=SINFO_TIMEOUT_S, check=True)
+    return [line.strip() for line in out.stdout.splitlines() if line.strip()]
+
+
+def _slurm_partition() -> str:
+    """The default partition of a cluster with an idle node; skip the test otherwise."""
+    for tool in ("sinfo", "squeue", "sbatch"):
+        if shutil.which(tool) is None:
+            pytest.skip(f"{tool} not found: Slurm is not installed here "
+                        "(CI installs and starts a one-node cluster with .ci/slurm-up)")
+    try:
+        states = _sinfo("-N", "-o", "%N %T")
+        partitions = _sinfo("-o", "%P")
+    except (subprocess.CalledProcessError, subprocess.TimeoutExpired) as exc:
+        pytest.skip(f"sinfo failed, slurmctld is not reachable ({exc}); start it with .ci/slurm-up")
+    if not any(line.split()[-1].rstrip("*~#").startswith(("idle", "mixed")) for line in states):
+        pytest.skip(f"no idle Slurm node (sinfo: {'; '.join(states) or 'no nodes'})")
+    default = [p.rstrip("*") for p in partitions if p.endswith("*")]
+    return (default or [partitions[0]])[0]
+
+
+@pytest.fixture
+def study(tmp_path, monkeypatch):
+    return make_study(tmp_path, monkeypatch, subjects_per_site=1)
+
+
+def test_slurm_plugin_run_equals_multiproc_run(study, tmp_path):
+    partition = _slurm_partition()
+    common = (*SELECTION, "--site-config", str(study.site_config))
+    reference = run_cli(cli_command(study.root, tmp_path / "deriv_multiproc", tmp_path / "work_multiproc",
+                                    *common, "--plugin", "MultiProc", "--nprocs", "2"))
+    assert reference.returncode == 0, reference.stderr
+
+    # sbatch arguments from our command line: the partition, one CPU per job, and the job
+    # logs in a folder of our own (nipype adds its own -o only when none is given).
+    logs = tmp_path / "slurm_logs"
+    logs.mkdir()
+    plugin_args = {"sbatch_args": f"-p {partition} -c 1 -o {logs}/nlu-%j.out", "max_jobs": MAX_JOBS}
+    # No LOGNAME, as under cron, CI or a container with an arbitrary uid: nipype's batch
+    # plugins name jobs after it (app._set_login_name provides it).
+    env = child_env(LOGNAME=None, USER=None)
+    slurm = run_cli(cli_command(study.root, tmp_path / "deriv_slurm", tmp_path / "work_slurm", *common,
+                                "--plugin", "SLURM", "--plugin-args", json.dumps(plugin_args)), env)
+    assert slurm.returncode == 0, slurm.stderr
+
+    # The nodes ran as Slurm jobs, with the -o we passed: one log per job, each a node's run.
+    job_logs = sorted(logs.glob("nlu-*.out"))
+    assert len(job_logs) >= 2 * IMAGES  # at least make_warp and apply_warp per image
+    assert all("[Node] Finished" in p.read_text() for p in job_logs)
+
+    assert len(derivative_images(tmp_path / "deriv_slurm")) >= 3 * IMAGES
+    assert tree_differences(tmp_path / "deriv_multiproc", tmp_path / "deriv_slurm") == []
+
+
+# The login name nipype's batch plugins need (no cluster required).
+
+def _without_login_variables(monkeypatch) -> None:
+    for var in ("LOGNAME", "USER", "LNAME", "USERNAME"):
+        monkeypatch.setenv(var, "placeholder")  # so that the undo restores the original state
+        monkeypatch.delenv(var)
+
+
+def test_login_name_comes_from_the_passwd_database(monkeypatch):
+    _without_login_variables(monkeypatch)
+    app._set_login_name()
+    # Reference: the POSIX user database, read through Python's pwd module.
+    assert os.environ["LOGNAME"] == pwd.getpwuid(os.getuid()).pw_name
+
+
+def test_login_name_without_passwd_entry_is_the_uid(monkeypatch):
+    _without_login_variables(monkeypatch)
+
+    def no_entry():
+        raise KeyError(f"getpwuid(): uid not found: {os.getuid()}")
+
+    monkeypatch.setattr(getpass, "getuser", no_entry)
+    app._set_login_name()
+    assert os.environ["LOGNAME"] == f"uid{os.getuid()}"
+
+
+def test_login_name_already_set_is_kept(monkeypatch):
+    monkeypatch.setenv("LOGNAME", "nlu-operator")
+    app._set_login_name()
+    assert os.environ["LOGNAME"] == "nlu-operator"
