@@ -10,15 +10,16 @@ would give: at encoded position ``p = u(r)`` it holds ``f(r) / det J(r)``.
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
+from scipy.spatial import cKDTree
 from scipy.special import erf
 
 from .frames import DeviceFrame
 from .warp import index_to_ras, lattice, upsample_lattice
 
-__all__ = ["Phantom", "forward_simulate", "marker_centroids", "region_means"]
+__all__ = ["MarkerPhantom", "Phantom", "forward_simulate", "marker_centroids", "region_means"]
 
 
 @dataclass
@@ -72,6 +73,78 @@ class Phantom:
         dist = np.linalg.norm(rel - nearest, axis=-1)
         value += np.where(in_set, self.marker_value * self._step(dist, self.marker_radius_mm), 0.0)
         return value
+
+
+@dataclass
+class MarkerPhantom:
+    """A uniform body with spherical markers anywhere, placed in world by a rigid pose.
+
+    Parameters
+    ----------
+    markers_mm : (M, 3) array-like
+        Marker centres in the phantom frame, mm.
+    marker_diameters_mm : (M,) array-like or float
+        Marker diameters, mm.
+    body_shape : {"sphere", "cylinder"}
+        Body about the phantom frame's origin; a cylinder's axis is the frame's z.
+    body_radius_mm : float
+    body_length_mm : float
+        Length of a cylinder along z (ignored for a sphere).
+    rotation : (3, 3) array-like
+        Phantom frame -> world RAS rotation ``R``.
+    translation_ras_mm : (3,) array-like
+        World RAS of the phantom frame's origin ``t``: ``p = R q + t``.
+    edge_mm, body_value, marker_value : float
+        As in :class:`Phantom`. Markers must not overlap (each point sees only
+        its nearest marker).
+    """
+
+    markers_mm: np.ndarray
+    marker_diameters_mm: np.ndarray | float
+    body_shape: str = "sphere"
+    body_radius_mm: float = 140.0
+    body_length_mm: float = 280.0
+    rotation: np.ndarray = field(default_factory=lambda: np.eye(3))
+    translation_ras_mm: np.ndarray = field(default_factory=lambda: np.zeros(3))
+    edge_mm: float = 1.0
+    body_value: float = 1.0
+    marker_value: float = 2.0
+
+    def __post_init__(self) -> None:
+        self.markers_mm = np.asarray(self.markers_mm, float).reshape(-1, 3)
+        self.marker_diameters_mm = np.broadcast_to(np.asarray(self.marker_diameters_mm, float),
+                                                   (len(self.markers_mm),)).copy()
+        self.rotation = np.asarray(self.rotation, float)
+        self.translation_ras_mm = np.asarray(self.translation_ras_mm, float)
+        if self.body_shape not in ("sphere", "cylinder"):
+            raise ValueError(f"body shape must be sphere or cylinder, got {self.body_shape!r}")
+        self._tree = cKDTree(self.markers_mm)
+
+    def markers_ras_mm(self) -> np.ndarray:
+        """(M, 3) marker centres in world RAS, mm."""
+        return self.markers_mm @ self.rotation.T + self.translation_ras_mm
+
+    def _step(self, distance_mm: np.ndarray) -> np.ndarray:
+        return 0.5 * (1.0 - erf(distance_mm / self.edge_mm))
+
+    def intensity(self, points_ras_mm: np.ndarray) -> np.ndarray:
+        """Phantom intensity at (..., 3) RAS points."""
+        pts = np.asarray(points_ras_mm, float)
+        shape = pts.shape[:-1]
+        q = (pts.reshape(-1, 3) - self.translation_ras_mm) @ self.rotation
+        if self.body_shape == "sphere":
+            outside = np.linalg.norm(q, axis=1) - self.body_radius_mm
+        else:
+            outside = np.maximum(np.hypot(q[:, 0], q[:, 1]) - self.body_radius_mm,
+                                 np.abs(q[:, 2]) - self.body_length_mm / 2)
+        value = self.body_value * self._step(outside)
+        # Only points near a marker need the marker term.
+        reach = 0.5 * float(self.marker_diameters_mm.max()) + 6.0 * self.edge_mm
+        dist, idx = self._tree.query(q, distance_upper_bound=reach)
+        near = np.isfinite(dist)
+        radius = 0.5 * self.marker_diameters_mm[idx[near]]
+        value[near] += self.marker_value * self._step(dist[near] - radius)
+        return value.reshape(shape)
 
 
 def forward_simulate(
