@@ -1,4 +1,4 @@
-"""Command line: ``nl-unwarp warp|correct|describe|import|demo``.
+"""Command line: ``nl-unwarp warp|correct|describe|import|demo|fit|...``.
 
 The CLI parses, calls library functions, and reports. Exit codes: 0 done,
 1 failure (a one-line message says which file and field), 2 usage error.
@@ -146,6 +146,7 @@ def build_parser() -> argparse.ArgumentParser:
     _add_compose_parser(sub)
     _add_report_parser(sub)
     _add_dwi_parser(sub)
+    _add_fit_parser(sub)
     return parser
 
 
@@ -575,6 +576,109 @@ def _cmd_dwi(args, progress: _Progress) -> None:
 
 
 COMMANDS["dwi"] = _cmd_dwi
+
+
+# Coil models from measurements: ``nl-unwarp fit KIND``. Each kind adds its parser in
+# _add_fit_parser and its function to FIT_KINDS.
+
+
+def _add_fit_parser(sub) -> None:
+    p = sub.add_parser("fit", help="make a coil model file from measurements (field samples, ...)",
+                       description="Fit a coil model to measurements of the gradient system. " + CAUTION)
+    kinds = p.add_subparsers(dest="fit_kind", required=True, metavar="KIND")
+    _add_fit_samples_parser(kinds)
+
+
+def _add_fit_samples_parser(kinds) -> None:
+    q = kinds.add_parser(
+        "samples", help="from field samples of each gradient coil (TSV tables or NIfTI field maps)",
+        description="Least-squares fit of solid harmonics to field samples of the x, y and z coils. "
+                    "A table has columns x_mm, y_mm, z_mm (device frame) and bz_mT; a NIfTI map holds "
+                    "bz_mT, its affine read as device-frame mm unless --position, --table-position or "
+                    "--isocenter-offset is given (then it is world RAS). See docs/fitting.md. " + CAUTION)
+    for axis in ("x", "y", "z"):
+        q.add_argument(f"--{axis}", required=True, metavar="FILE", dest=f"{axis}_samples",
+                       help=f"field samples of the {axis} coil (.tsv/.txt table or .nii[.gz] map)")
+    q.add_argument("--gradient-mT-per-m", type=float, nargs="+", metavar="G",
+                   help="nominal gradient(s), mT/m: one for all coils or three (x y z); default: the "
+                        "'# gradient_mT_per_m:' line of each table")
+    q.add_argument("--degree", default="auto", metavar="N|auto",
+                   help="harmonic degree, or auto: held-out (leave-one-out) cross-validation (default)")
+    q.add_argument("--max-degree", type=int, default=15, metavar="N",
+                   help="highest degree tried with --degree auto (default: 15)")
+    q.add_argument("--symmetry", choices=("none", "mirror", "axial"), default="none",
+                   help="leave out the terms a symmetric coil design forbids: mirror (each coil mirror-"
+                        "symmetric in the planes x=0, y=0, z=0) or axial (also an axially symmetric z "
+                        "coil); default: none")
+    q.add_argument("--reference-radius-mm", type=float, help="R0 of the model (default: the sampled radius)")
+    q.add_argument("--valid-radius-mm", type=float,
+                   help="valid radius written to the model (default: the radius the samples cover)")
+    g = q.add_argument_group("NIfTI field maps: world frame of the affine")
+    g.add_argument("--position", type=str.upper, choices=sorted(PATIENT_POSITIONS),
+                   help="read the affines as world RAS of a patient in this DICOM PatientPosition")
+    g.add_argument("--table-position", nargs=3, type=float, metavar=("TP1", "TP2", "TP3"),
+                   help="BIDS TablePosition, mm (affines read as world RAS)")
+    g.add_argument("--isocenter-offset", nargs=3, type=float, metavar=("DX", "DY", "DZ"),
+                   help="device coordinates (mm) of the world origin (affines read as world RAS)")
+    g = q.add_argument_group("outputs and provenance")
+    g.add_argument("--out", required=True, metavar="JSON", help="coil model file to write")
+    g.add_argument("--out-summary", metavar="JSON", help="fit summary: residuals, predicted error, warnings")
+    g.add_argument("--report", metavar="DIR", help="folder for the fit's report page and the coil model page")
+    g.add_argument("--label", default="fitted from field samples", help="label of the coil model")
+    g.add_argument("--description", default="", help="free-text provenance")
+    g.add_argument("--date", help="provenance date, ISO 8601 (default: today, UTC)")
+
+
+def _fit_degree(text: str) -> int | None:
+    if text.strip().lower() == "auto":
+        return None
+    try:
+        value = int(text)
+    except ValueError:
+        raise InputError("--degree", f"{text!r} is neither a whole number nor auto") from None
+    if not 1 <= value <= 60:
+        raise InputError("--degree", f"degree {value} out of range (1..60)")
+    return value
+
+
+def _cmd_fit_samples(args, progress: _Progress) -> None:
+    from .interfaces.fit import FIT_PAGE_NAME, fit_field_sample_files
+
+    progress.step("reading field samples and fitting")
+    s = fit_field_sample_files(
+        {"x": args.x_samples, "y": args.y_samples, "z": args.z_samples}, args.out,
+        gradient_mT_per_m=args.gradient_mT_per_m, degree=_fit_degree(args.degree),
+        max_degree=args.max_degree, symmetry=args.symmetry, reference_radius_mm=args.reference_radius_mm,
+        valid_radius_mm=args.valid_radius_mm, position=args.position,
+        table_position_mm=args.table_position, isocenter_offset_mm=args.isocenter_offset,
+        label=args.label, description=args.description, date=args.date, out_summary=args.out_summary,
+        report_dir=args.report)
+    print(f"degree           {s['degree_choice']}; symmetry {s['symmetry']}")
+    print("axis  degree  samples   rms (mm)   max (mm)  held-out rms (mm)  condition")
+    for name, a in s["axes"].items():
+        print(f"{name:4}  {a['degree']:6d}  {a['samples']:7d}  {a['residual_rms_mm']:9.4f}  "
+              f"{a['residual_max_mm']:9.4f}  {a['cv_rms_mm']:17.4f}  {a['condition_number']:9.3g}")
+    err = s["predicted_error_max_mm"]
+    print(f"valid radius     {s['valid_radius_mm']:.1f} mm (samples cover {s['sampled_radius_mm']:.1f} mm)")
+    print("predicted error  " + ("unknown" if err is None else
+                                 f"max {err:.4f} mm inside the valid radius; grows as r^"
+                                 f"{s['growth_exponent']:.1f} outside"))
+    for w in s["warnings"]:
+        print(f"warning          {w['axis'] or 'all'}: {w['code']}: {w['message']}")
+    print(f"wrote            {args.out}")
+    if args.report:
+        print(f"report           {Path(args.report) / FIT_PAGE_NAME}")
+    print(CAUTION)
+
+
+FIT_KINDS = {"samples": _cmd_fit_samples}
+
+
+def _cmd_fit(args, progress: _Progress) -> None:
+    FIT_KINDS[args.fit_kind](args, progress)
+
+
+COMMANDS["fit"] = _cmd_fit
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -5,20 +5,99 @@ one linear least-squares solve per gradient axis. Samples are encoded positions
 ``u_c`` (mm) at known device positions; samples of the field a coil makes
 convert to them by dividing by the coil's gradient at the isocenter
 (:func:`encoded_from_field`). This module is pure math: it takes arrays and
-returns coil models.
+returns coil models, fit figures and structured warnings (never prints).
+
+Linear algebra
+--------------
+Terms are ordered by degree (:func:`fit_terms`), the design's columns are
+normalised to unit length (equilibration), and the design is factorised once
+by a Householder QR, ``A = Q R``. Because a QR's leading ``k`` columns of ``Q``
+and ``k x k`` block of ``R`` are those of the first ``k`` columns of ``A``
+alone, that one factorisation holds the fit of *every* lower degree: the
+coefficients of degree ``d`` solve ``R[:k, :k] c = (Q^T b)[:k]``, and their
+leave-one-out residuals follow from the leverages ``h_i = sum_j<k Q_ij^2`` by
+the PRESS identity ``e_(i) = e_i / (1 - h_i)`` (Allen, Technometrics 16, 1974;
+any regression text). Cross-validated degree choice and the comparison fit of
+degree ``d + 2`` therefore cost no extra factorisation, and the harmonic table
+of a set of sample positions is computed once for all axes that share it.
 """
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterable, Mapping
-from dataclasses import dataclass
+from dataclasses import asdict, dataclass, field
 
 import numpy as np
+from scipy.linalg import qr, solve_triangular
 
 from .coil import AXES, AxisExpansion, CoilModel
-from .harmonics import harmonic_table
+from .harmonics import expansion, harmonic_table
 
-__all__ = ["AxisFit", "design_matrix", "encoded_from_field", "fit_axis", "fit_coil", "fit_terms"]
+__all__ = [
+    "DEFAULT_MAX_DEGREE",
+    "SYMMETRIES",
+    "AxisFit",
+    "ErrorAtRadius",
+    "FitSummary",
+    "FitWarning",
+    "design_matrix",
+    "encoded_from_field",
+    "fit_axis",
+    "fit_coil",
+    "fit_provenance",
+    "fit_samples",
+    "fit_terms",
+    "term_allowed",
+    "valid_radius_from_samples",
+]
+
+#: Symmetry constraints a fit can impose (see :func:`term_allowed`).
+SYMMETRIES = ("none", "mirror", "axial")
+#: Highest degree tried when the degree is chosen by cross-validation.
+DEFAULT_MAX_DEGREE = 15
+#: Degree step of the comparison fit that estimates the model error: +2 keeps the
+#: parity of the degree, so with a symmetry (odd degrees only) it is the next
+#: fitted degree, and without one it adds one even and one odd degree.
+COMPARISON_STEP = 2
+#: Condition number of the column-normalised design above which a warning is
+#: returned: measurement noise can then be amplified ~1e4-fold in the coefficients
+#: (the fitted values at the samples are not affected, extrapolation is). Samples on a
+#: sphere give 1-10 at degree 15; samples filling a ball about 1e3 (measured here).
+CONDITION_WARN = 1e4
+#: Number of direction bins (a Fibonacci lattice, ~36 degrees apart) in which
+#: samples are looked for: the coverage check and the valid radius use them.
+DIRECTION_BINS = 32
+#: A fitted linear coefficient further than this from 1 means the stated nominal
+#: gradient is not the coil's gradient at the isocenter (common practice, no source).
+LINEAR_WARN = 0.05
+#: Fewer samples than this many per fitted term make leave-one-out scores noisy
+#: (common practice, no source).
+SAMPLES_PER_TERM_WARN = 3.0
+#: Radii (in units of the valid radius) of the error-versus-radius table.
+ERROR_RADII = tuple(np.round(np.arange(0.1, 1.51, 0.05), 2))
+#: Directions per radius of the error-versus-radius table.
+ERROR_DIRECTIONS = 300
+
+
+@dataclass(frozen=True)
+class FitWarning:
+    """A structured warning of a fit (the caller decides how to show it).
+
+    Attributes
+    ----------
+    code : str
+        ``ill-conditioned``, ``coverage``, ``few-samples``, ``degree-at-limit``,
+        ``linear-term``, ``beyond-samples`` or ``no-error-estimate``.
+    axis : str or None
+        Gradient axis concerned (None: all).
+    message : str
+        One sentence saying what it means and what to do.
+    """
+
+    code: str
+    axis: str | None
+    message: str
 
 
 @dataclass(frozen=True)
@@ -35,6 +114,21 @@ class AxisFit:
         well the sample positions separate the fitted terms (1 is ideal).
     samples, terms : int
         Number of samples and of fitted coefficients.
+    degree : int
+        Degree fitted.
+    cv_rms_mm : float
+        Leave-one-out (held-out) RMS residual at that degree, mm.
+    cv_scores : tuple of (degree, rms_mm, se_mm2)
+        Leave-one-out RMS residual and the standard error of its mean square
+        for each candidate degree (one entry when the degree was given).
+    comparison_degree : int or None
+        Degree of the comparison fit (``degree + 2``), None if it could not be
+        determined from the samples.
+    predicted_error_rms_mm, predicted_error_max_mm : float
+        This axis's part of the predicted error inside the valid radius
+        (difference to the comparison fit, see :class:`FitSummary`), mm.
+    sampled_radius_mm : float
+        Radius this axis's samples cover in every direction, mm.
     """
 
     residual_rms_mm: float
@@ -42,6 +136,90 @@ class AxisFit:
     condition_number: float
     samples: int
     terms: int
+    degree: int = 0
+    cv_rms_mm: float = math.nan
+    cv_scores: tuple = ()
+    comparison_degree: int | None = None
+    predicted_error_rms_mm: float = math.nan
+    predicted_error_max_mm: float = math.nan
+    sampled_radius_mm: float = math.nan
+
+
+@dataclass(frozen=True)
+class ErrorAtRadius:
+    """Predicted error of the encoded position on a sphere about the isocenter, mm."""
+
+    radius_mm: float
+    rms_mm: float
+    max_mm: float
+
+
+@dataclass(frozen=True)
+class FitSummary:
+    """What a fit of a coil model to samples found.
+
+    Attributes
+    ----------
+    axes : dict of str to AxisFit
+    degree_choice : {"given", "cross-validated"}
+    symmetry : str
+        One of :data:`SYMMETRIES`.
+    reference_radius_mm, valid_radius_mm : float
+        :math:`R_0` of the model, and the radius written as its valid radius.
+    sampled_radius_mm : float
+        Radius the samples cover in every direction (smallest over the axes).
+    predicted_error_rms_mm, predicted_error_max_mm : float
+        Predicted error of the encoded position vector inside the valid radius:
+        the difference between the fitted model (degree ``d``) and the
+        comparison fit (degree ``d + 2``) to the same samples. See Notes.
+    error_vs_radius : tuple of ErrorAtRadius
+        The same difference on spheres from 0.1 to 1.5 valid radii.
+    growth_exponent : float
+        ``k`` in error ~ r^k between 1 and 1.5 valid radii (log-log slope of
+        the largest error): how fast the error grows outside the samples.
+    warnings : tuple of FitWarning
+
+    Notes
+    -----
+    Why the difference to a ``d + 2`` fit, not the cross-validated residual:
+    the leave-one-out residual is measured *at* the samples and counts the
+    measurement noise of the held-out sample as model error; it says nothing
+    about points between samples (inside a sphere that was sampled only on
+    its surface it cannot be measured at all). The model's error anywhere is
+    dominated by the first unfitted degrees (harmonic coefficients at the
+    sampled radius decay geometrically with the degree), and a fit that
+    includes them differs from the model by about that much everywhere,
+    between and outside the samples. The leave-one-out residual is reported
+    beside it and chooses the degree.
+    """
+
+    axes: Mapping[str, AxisFit]
+    degree_choice: str
+    symmetry: str
+    reference_radius_mm: float
+    valid_radius_mm: float
+    sampled_radius_mm: float
+    predicted_error_rms_mm: float
+    predicted_error_max_mm: float
+    error_vs_radius: tuple = ()
+    growth_exponent: float = math.nan
+    warnings: tuple = field(default_factory=tuple)
+
+    def as_dict(self) -> dict:
+        """A JSON-ready dictionary (NaN becomes None)."""
+        return _json_ready(asdict(self))
+
+
+def _json_ready(value):
+    if isinstance(value, dict):
+        return {str(k): _json_ready(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_json_ready(v) for v in value]
+    if isinstance(value, (float, np.floating)):
+        return None if not math.isfinite(value) else float(value)
+    if isinstance(value, np.integer):
+        return int(value)
+    return value
 
 
 def encoded_from_field(bz_mT: np.ndarray, *, gradient_mT_per_m: float) -> np.ndarray:
@@ -63,7 +241,61 @@ def encoded_from_field(bz_mT: np.ndarray, *, gradient_mT_per_m: float) -> np.nda
     return 1e3 * np.asarray(bz_mT, dtype=float) / float(gradient_mT_per_m)
 
 
-def fit_terms(degree: int, orders: Iterable[int] | None = None) -> list[tuple[str, int, int]]:
+def term_allowed(axis: str, kind: str, n: int, m: int, symmetry: str = "none") -> bool:
+    """Whether a symmetric coil design allows the term ``(kind, n, m)`` on ``axis``.
+
+    Parameters
+    ----------
+    axis : {"x", "y", "z"}
+    kind : {"cos", "sin"}
+    n, m : int
+    symmetry : {"none", "mirror", "axial"}
+        ``mirror``: the coil of axis ``c`` is mirror-symmetric in the three
+        planes x = 0, y = 0, z = 0, with :math:`B_z` odd in ``c`` and even in the
+        other two coordinates (a linear gradient along ``c`` is). ``axial``:
+        as ``mirror``, and the z coil is also axially symmetric (loops).
+
+    Notes
+    -----
+    Derivation, from :math:`C_n^m, S_n^m = \\rho^n \\bar P_n^m(\\cos\\theta)(\\cos, \\sin)\\, m\\phi`:
+
+    * z -> -z maps θ to π - θ, and :math:`P_n^m(-t) = (-1)^{n+m} P_n^m(t)`: both
+      kinds have parity :math:`(-1)^{n+m}` in z.
+    * y -> -y maps φ to -φ: cos terms are even in y, sin terms odd.
+    * x -> -x maps φ to π - φ: :math:`\\cos m(\\pi - \\phi) = (-1)^m \\cos m\\phi`,
+      :math:`\\sin m(\\pi - \\phi) = (-1)^{m+1} \\sin m\\phi`.
+
+    Hence, for :math:`B_z` odd in its own axis and even in the others:
+
+    * x coil (odd x, even y, even z): cos terms, m odd, n + m even, so n odd;
+    * y coil (even x, odd y, even z): sin terms, m odd (sin parity in x is
+      :math:`(-1)^{m+1} = 1`), n odd;
+    * z coil (even x, even y, odd z): cos terms, m even, n + m odd, so n odd;
+      with axial symmetry only m = 0 (the field does not depend on φ).
+
+    The constant term (n = 0) is excluded by every symmetry: a symmetric coil
+    makes no field at its centre.
+    """
+    if symmetry not in SYMMETRIES:
+        raise ValueError(f"unknown symmetry {symmetry!r}; expected one of {', '.join(SYMMETRIES)}")
+    if axis not in AXES:
+        raise ValueError(f"unknown gradient axis {axis!r}; expected x, y or z")
+    if symmetry == "none":
+        return True
+    z_parity_even = (n + m) % 2 == 0
+    if axis == "x":
+        allowed = kind == "cos" and m % 2 == 1 and z_parity_even
+    elif axis == "y":
+        allowed = kind == "sin" and m % 2 == 1 and z_parity_even
+    else:
+        allowed = kind == "cos" and m % 2 == 0 and not z_parity_even
+        if symmetry == "axial":
+            allowed = allowed and m == 0
+    return allowed
+
+
+def fit_terms(degree: int, orders: Iterable[int] | None = None, *, axis: str | None = None,
+              symmetry: str = "none") -> list[tuple[str, int, int]]:
     """The terms a fit solves for, as ``(kind, n, m)`` with kind ``"cos"`` or ``"sin"``.
 
     Parameters
@@ -72,20 +304,48 @@ def fit_terms(degree: int, orders: Iterable[int] | None = None) -> list[tuple[st
         Highest degree ``N``.
     orders : iterable of int, optional
         Orders ``m`` to fit (all of ``0..N`` by default); the others stay zero.
+    axis : {"x", "y", "z"}, optional
+        Gradient axis, needed with a symmetry.
+    symmetry : {"none", "mirror", "axial"}
+        Keep only the terms :func:`term_allowed` allows.
+
+    Returns
+    -------
+    list of (kind, n, m)
+        Degree-major (``n``, then ``m``, cos before sin): the terms of any lower
+        degree are a leading part of the list, which the nested solve relies on.
 
     Notes
     -----
     :math:`S_n^0` vanishes identically and is never a term.
     """
     keep = set(range(degree + 1)) if orders is None else {int(m) for m in orders}
-    terms = []
-    for m in sorted(keep):
+    for m in keep:
         if not 0 <= m <= degree:
             raise ValueError(f"order m={m} out of range for degree {degree}")
-        terms += [("cos", n, m) for n in range(m, degree + 1)]
-        if m > 0:
-            terms += [("sin", n, m) for n in range(m, degree + 1)]
+    if symmetry != "none" and axis is None:
+        raise ValueError("a symmetry constraint needs the gradient axis")
+    terms = []
+    for n in range(degree + 1):
+        for m in range(n + 1):
+            if m not in keep:
+                continue
+            for kind in ("cos", "sin") if m else ("cos",):
+                if symmetry == "none" or term_allowed(axis, kind, n, m, symmetry):
+                    terms.append((kind, n, m))
     return terms
+
+
+def _columns(table_c: np.ndarray, table_s: np.ndarray, terms, reference_radius_mm: float) -> np.ndarray:
+    """Design columns from a harmonic table (fancy indexing: one copy)."""
+    kinds = np.array([k == "cos" for k, _, _ in terms], dtype=bool)
+    n_idx = np.array([n for _, n, _ in terms], dtype=int)
+    m_idx = np.array([m for _, _, m in terms], dtype=int)
+    design = np.empty((table_c.shape[0], len(terms)))
+    design[:, kinds] = table_c[:, n_idx[kinds], m_idx[kinds]]
+    design[:, ~kinds] = table_s[:, n_idx[~kinds], m_idx[~kinds]]
+    design *= reference_radius_mm
+    return design
 
 
 def design_matrix(points_device_mm: np.ndarray, terms: list[tuple[str, int, int]], *,
@@ -110,8 +370,310 @@ def design_matrix(points_device_mm: np.ndarray, terms: list[tuple[str, int, int]
     pts = np.asarray(points_device_mm, dtype=float).reshape(-1, 3)
     degree = max((n for _, n, _ in terms), default=0)
     table_c, table_s = harmonic_table(pts / reference_radius_mm, degree)
-    cols = [(table_c if kind == "cos" else table_s)[:, n, m] for kind, n, m in terms]
-    return reference_radius_mm * np.stack(cols, axis=-1)
+    return _columns(table_c, table_s, terms, reference_radius_mm)
+
+
+# --- sampling geometry -----------------------------------------------------------------------
+
+
+def _fibonacci_directions(count: int) -> np.ndarray:
+    """(count, 3) unit vectors spread evenly over the sphere (Fibonacci lattice)."""
+    i = np.arange(count) + 0.5
+    z = 1.0 - 2.0 * i / count
+    phi = np.pi * (1.0 + 5**0.5) * i
+    rho = np.sqrt(1.0 - z * z)
+    return np.stack([rho * np.cos(phi), rho * np.sin(phi), z], -1)
+
+
+def valid_radius_from_samples(points_device_mm: np.ndarray, *, bins: int = DIRECTION_BINS
+                              ) -> tuple[float, float]:
+    """Radius about the isocenter that the samples cover in every direction.
+
+    Parameters
+    ----------
+    points_device_mm : (N, 3) ndarray, mm
+    bins : int
+        Number of direction bins (nearest of a Fibonacci lattice of directions).
+
+    Returns
+    -------
+    radius_mm : float
+        The smallest, over the direction bins holding samples, of the largest
+        sample radius in the bin: for samples on or in a sphere of radius R it
+        is R, for a cube of half-width h about h (the inscribed sphere). A
+        harmonic series is determined inside a closed surface by its values on
+        it, and extrapolates poorly beyond it.
+    empty_fraction : float
+        Fraction of the direction bins without any sample (0 for full coverage).
+    """
+    pts = np.asarray(points_device_mm, dtype=float).reshape(-1, 3)
+    radius = np.linalg.norm(pts, axis=1)
+    off_centre = radius > 0
+    if not np.any(off_centre):
+        return 0.0, 1.0
+    dirs = _fibonacci_directions(bins)
+    nearest = np.argmax((pts[off_centre] / radius[off_centre, None]) @ dirs.T, axis=1)
+    reach = np.zeros(bins)
+    np.maximum.at(reach, nearest, radius[off_centre])
+    filled = reach > 0
+    return float(reach[filled].min()), float(1.0 - filled.mean())
+
+
+# --- the nested solve ------------------------------------------------------------------------
+
+
+@dataclass
+class _NestedFit:
+    """One QR of a degree-ordered, column-normalised design and what follows from it."""
+
+    terms: list
+    norms: np.ndarray
+    q: np.ndarray
+    r: np.ndarray
+    qtb: np.ndarray
+    values: np.ndarray
+
+    def count(self, degree: int) -> int:
+        """Number of leading terms of degree <= ``degree``."""
+        return sum(1 for _, n, _ in self.terms if n <= degree)
+
+    def singular_values(self, k: int) -> np.ndarray:
+        return np.linalg.svd(self.r[:k, :k], compute_uv=False)
+
+    def coefficients(self, k: int) -> np.ndarray:
+        return solve_triangular(self.r[:k, :k], self.qtb[:k], check_finite=False) / self.norms[:k]
+
+
+def _nested_fit(design: np.ndarray, values: np.ndarray, terms: list) -> _NestedFit:
+    norms = np.linalg.norm(design, axis=0)
+    design /= np.where(norms > 0, norms, 1.0)
+    q, r = qr(design, mode="economic", overwrite_a=True, check_finite=False)
+    return _NestedFit(terms, norms, q, r, q.T @ values, values)
+
+
+def _expansion(terms, coef, degree: int, r0: float, valid: float) -> AxisExpansion:
+    alpha = np.zeros((degree + 1, degree + 1))
+    beta = np.zeros_like(alpha)
+    for (kind, n, m), value in zip(terms, coef, strict=True):
+        (alpha if kind == "cos" else beta)[n, m] = value
+    return AxisExpansion(alpha, beta, float(r0), float(valid))
+
+
+@dataclass
+class _AxisResult:
+    expansion: AxisExpansion
+    comparison: AxisExpansion | None
+    report: AxisFit
+    warnings: list
+
+
+def _determinable(nested: _NestedFit, k: int, samples: int) -> tuple[bool, int]:
+    """Whether the leading ``k`` terms are separated by the samples, and the numerical rank."""
+    if k > samples or k > nested.r.shape[0] or np.any(nested.norms[:k] == 0):
+        return False, 0
+    sing = nested.singular_values(k)
+    rank = int(np.sum(sing > sing[0] * np.finfo(float).eps * max(samples, k)))
+    return rank == k, rank
+
+
+def _loo_scores(nested: _NestedFit, counts: list[int]) -> list[tuple[float, float]]:
+    """Leave-one-out mean square residual and its standard error for each leading count."""
+    fitted = np.zeros_like(nested.values)
+    leverage = np.zeros_like(nested.values)
+    done, out = 0, []
+    for k in counts:
+        block = nested.q[:, done:k]
+        fitted += block @ nested.qtb[done:k]
+        leverage += np.einsum("ij,ij->i", block, block)
+        done = k
+        free = 1.0 - leverage
+        if np.any(free <= 1e-12):
+            out.append((math.inf, math.inf))
+            continue
+        loo_sq = ((nested.values - fitted) / free) ** 2
+        se = float(loo_sq.std(ddof=1) / math.sqrt(loo_sq.size)) if loo_sq.size > 1 else math.inf
+        out.append((float(loo_sq.mean()), se))
+    return out
+
+
+def _fit_one(axis: str | None, points: np.ndarray, values: np.ndarray, tables, *, degree: int | None,
+             max_degree: int, symmetry: str, orders, r0: float, valid: float) -> _AxisResult:
+    """Fit one axis: a given degree, or the cross-validated one up to ``max_degree``."""
+    samples = points.shape[0]
+    top = (degree if degree is not None else max_degree) + COMPARISON_STEP
+    all_terms = fit_terms(top, orders, axis=axis, symmetry=symmetry)
+    counts = {d: sum(1 for _, n, _ in all_terms if n <= d) for d in range(top + 1)}
+    wanted = [degree] if degree is not None else [
+        d for d in range(1, max_degree + 1) if counts[d] > counts[d - 1]]
+    if degree is not None and samples < counts[degree]:
+        raise ValueError(f"{samples} samples cannot determine {counts[degree]} terms of degree "
+                         f"{degree}: add samples or lower the degree")
+    # Factorise only as many columns as the samples can carry.
+    qr_degree = max(d for d in range(top + 1) if counts[d] <= samples) if counts[0] <= samples else 0
+    terms = all_terms[: counts[qr_degree]]
+    design = _columns(*tables(qr_degree), terms, r0)
+    nested = _nested_fit(design, values, terms)
+    requested = counts[degree] if degree is not None else None
+    if requested is not None:
+        if np.any(nested.norms[:requested] == 0):
+            raise ValueError("a harmonic term vanishes at every sample (e.g. all samples at the origin "
+                             "or on the z axis): spread the samples over a sphere")
+        ok, rank = _determinable(nested, requested, samples)
+        if not ok:
+            raise ValueError(f"the samples separate only {rank} of {requested} terms: spread them over "
+                             "a sphere or lower the degree")
+    candidates = [d for d in wanted if _determinable(nested, counts[d], samples)[0]]
+    if not candidates:
+        raise ValueError(f"the {samples} samples of axis {axis} cannot determine even a degree-1 fit: "
+                         "spread them over a sphere")
+    scores = _loo_scores(nested, [counts[d] for d in candidates])
+    if degree is None:
+        best = int(np.argmin([s[0] for s in scores]))
+        threshold = scores[best][0] + scores[best][1]
+        # One-standard-error rule (Breiman et al. 1984; Hastie, Tibshirani & Friedman, The
+        # Elements of Statistical Learning, 2nd ed., 7.10, from memory): the smallest degree whose
+        # held-out error is within one standard error of the best.
+        chosen = next(d for d, s in zip(candidates, scores, strict=True) if s[0] <= threshold)
+    else:
+        chosen = degree
+    k = counts[chosen]
+    coef = nested.coefficients(k)
+    residual = nested.q[:, :k] @ nested.qtb[:k] - values
+    comparison_degree = next((d for d in range(chosen + COMPARISON_STEP, chosen, -1)
+                              if d <= qr_degree and counts[d] > k
+                              and _determinable(nested, counts[d], samples)[0]), None)
+    comparison = None
+    if comparison_degree is not None:
+        kc = counts[comparison_degree]
+        comparison = _expansion(terms[:kc], nested.coefficients(kc), comparison_degree, r0, valid)
+    sing = nested.singular_values(k)
+    loo = dict(zip(candidates, scores, strict=True))
+    sampled, empty = valid_radius_from_samples(points)
+    report = AxisFit(
+        residual_rms_mm=float(np.sqrt(np.mean(residual**2))),
+        residual_max_mm=float(np.max(np.abs(residual))),
+        condition_number=float(sing[0] / sing[-1]),
+        samples=int(samples),
+        terms=int(k),
+        degree=int(chosen),
+        cv_rms_mm=float(math.sqrt(loo[chosen][0])),
+        cv_scores=tuple((int(d), float(math.sqrt(s[0])), float(s[1])) for d, s in loo.items()),
+        comparison_degree=comparison_degree,
+        sampled_radius_mm=sampled,
+    )
+    fitted = _expansion(terms[:k], coef, chosen, r0, valid)
+    warnings = _axis_warnings(axis, report, fitted, degree is None and chosen == candidates[-1]
+                              and candidates[-1] == wanted[-1], empty, max_degree)
+    return _AxisResult(fitted, comparison, report, warnings)
+
+
+def _axis_warnings(axis, report: AxisFit, expansion: AxisExpansion, at_limit: bool, empty: float,
+                   max_degree: int) -> list[FitWarning]:
+    out = []
+    if report.condition_number > CONDITION_WARN:
+        out.append(FitWarning("ill-conditioned", axis, (
+            f"condition number {report.condition_number:.3g} of the normalised design: the samples "
+            "separate the terms poorly and noise is amplified in the coefficients; sample the surface "
+            "of a sphere (not only its inside) or lower the degree")))
+    if empty > 0:
+        out.append(FitWarning("coverage", axis, (
+            f"{100 * empty:.0f} % of the directions from the isocenter hold no sample: the model is "
+            "extrapolated there; sample the whole sphere")))
+    if report.samples < SAMPLES_PER_TERM_WARN * report.terms:
+        out.append(FitWarning("few-samples", axis, (
+            f"{report.samples} samples for {report.terms} terms (fewer than "
+            f"{SAMPLES_PER_TERM_WARN:g} per term): held-out scores are noisy; add samples")))
+    if at_limit:
+        out.append(FitWarning("degree-at-limit", axis, (
+            f"cross-validation chose the highest degree tried ({max_degree}): the samples support "
+            "more terms; raise the maximum degree if the samples allow")))
+    if axis is not None:
+        linear = expansion.linear_coefficient(axis)
+        if abs(linear - 1.0) > LINEAR_WARN:
+            out.append(FitWarning("linear-term", axis, (
+                f"fitted linear coefficient {linear:.4g} (expected about 1): the stated nominal "
+                "gradient is not this coil's gradient at the isocenter, or the field is in other "
+                "units")))
+    if report.comparison_degree is None:
+        out.append(FitWarning("no-error-estimate", axis, (
+            f"no degree-{report.degree + COMPARISON_STEP} comparison fit is possible with these "
+            "samples, so the predicted error is unknown; add samples")))
+    return out
+
+
+# --- predicted error -------------------------------------------------------------------------
+
+
+def _error_points(radius_mm: float) -> tuple[np.ndarray, np.ndarray]:
+    """(R, D, 3) points on spheres at :data:`ERROR_RADII` valid radii, and the radii (mm)."""
+    dirs = _fibonacci_directions(ERROR_DIRECTIONS)
+    radii = np.asarray(ERROR_RADII, dtype=float) * radius_mm
+    return radii[:, None, None] * dirs[None], radii
+
+
+def _difference_mm(results: Mapping[str, _AxisResult], points: np.ndarray) -> np.ndarray | None:
+    """(..., 3) difference between the fitted models and their comparison fits at device points."""
+    if any(res.comparison is None for res in results.values()):
+        return None
+    diff = np.zeros(points.shape[:-1] + (len(results),))
+    for c, res in enumerate(results.values()):
+        for ax, sign in ((res.expansion, 1.0), (res.comparison, -1.0)):
+            r0 = ax.reference_radius_mm
+            diff[..., c] += sign * r0 * expansion(points / r0, ax.alpha, ax.beta, gradient=False)[0]
+    return diff
+
+
+def _error_summary(results: Mapping[str, _AxisResult], valid_mm: float):
+    points, radii = _error_points(valid_mm)
+    diff = _difference_mm(results, points)
+    if diff is None:
+        return (), math.nan, math.nan, math.nan, {}
+    mag = np.linalg.norm(diff, axis=-1)
+    table = tuple(ErrorAtRadius(float(r), float(np.sqrt(np.mean(m**2))), float(m.max()))
+                  for r, m in zip(radii, mag, strict=True))
+    inside = radii <= valid_mm * (1 + 1e-9)
+    # Volume-weighted RMS over the ball (shells weighted by r^2 dr).
+    w = radii[inside] ** 2
+    rms_in = float(np.sqrt(np.sum(w * np.mean(mag[inside] ** 2, axis=1)) / np.sum(w)))
+    max_in = float(mag[inside].max())
+    per_axis = {}
+    for c, name in enumerate(results):
+        a = np.abs(diff[inside][..., c])
+        per_axis[name] = (float(np.sqrt(np.sum(w * np.mean(a**2, axis=1)) / np.sum(w))), float(a.max()))
+    at_edge = float(mag[np.argmin(np.abs(radii - valid_mm))].max())
+    at_out = float(mag[-1].max())
+    growth = (math.log(at_out / at_edge) / math.log(radii[-1] / valid_mm)
+              if at_edge > 0 and at_out > 0 else math.nan)
+    return table, rms_in, max_in, growth, per_axis
+
+
+# --- public entry points ---------------------------------------------------------------------
+
+
+def _table_cache(points: np.ndarray, r0: float):
+    """Harmonic tables of one point set, computed once at the highest degree asked for."""
+    cache: dict = {}
+
+    def tables(degree: int):
+        if "table" not in cache or cache["degree"] < degree:
+            cache["table"] = harmonic_table(points / r0, degree)
+            cache["degree"] = degree
+        table_c, table_s = cache["table"]
+        return table_c[:, : degree + 1, : degree + 1], table_s[:, : degree + 1, : degree + 1]
+
+    return tables
+
+
+def _check_samples(name, points, values) -> tuple[np.ndarray, np.ndarray]:
+    pts = np.asarray(points, dtype=float)
+    vals = np.asarray(values, dtype=float)
+    if pts.ndim != 2 or pts.shape[1] != 3 or vals.shape != (pts.shape[0],):
+        raise ValueError(f"expected (N, 3) points and (N,) encoded positions, got {pts.shape} and "
+                         f"{vals.shape}" + (f" for axis {name}" if name else ""))
+    if not (np.all(np.isfinite(pts)) and np.all(np.isfinite(vals))):
+        raise ValueError("sample positions and values must be finite"
+                         + (f" (axis {name})" if name else ""))
+    return pts, vals
 
 
 def fit_axis(
@@ -122,6 +684,8 @@ def fit_axis(
     reference_radius_mm: float,
     valid_radius_mm: float,
     orders: Iterable[int] | None = None,
+    axis: str | None = None,
+    symmetry: str = "none",
 ) -> tuple[AxisExpansion, AxisFit]:
     """Fit the harmonic expansion of one gradient axis to encoded positions.
 
@@ -138,16 +702,20 @@ def fit_axis(
         :math:`R_0` of the returned expansion, mm.
     valid_radius_mm : float
         Radius inside which the result is to be trusted, mm (usually the
-        radius the samples cover).
+        radius the samples cover, :func:`valid_radius_from_samples`).
     orders : iterable of int, optional
         Orders ``m`` fitted; by default all.
+    axis : {"x", "y", "z"}, optional
+        The gradient axis (needed with a symmetry).
+    symmetry : {"none", "mirror", "axial"}
+        Terms kept (:func:`term_allowed`).
 
     Returns
     -------
     AxisExpansion
         Schmidt coefficients ``alpha``, ``beta`` of shape ``(degree + 1, degree + 1)``.
     AxisFit
-        Residuals and condition number.
+        Residuals, condition number, leave-one-out residual.
 
     Raises
     ------
@@ -165,40 +733,141 @@ def fit_axis(
                           + \\beta_{nm} S_n^m(\\mathbf r_i/R_0)
 
     with the columns normalised to unit length before the solve (equilibration:
-    the condition number then reflects the sampling, not the choice of :math:`R_0`).
+    the condition number then reflects the sampling, not the choice of :math:`R_0`),
+    by a QR factorisation (see the module notes).
     """
-    pts = np.asarray(points_device_mm, dtype=float)
-    values = np.asarray(encoded_mm, dtype=float)
-    if pts.ndim != 2 or pts.shape[1] != 3 or values.shape != (pts.shape[0],):
-        raise ValueError(f"expected (N, 3) points and (N,) encoded positions, got {pts.shape} and "
-                         f"{values.shape}")
-    terms = fit_terms(degree, orders)
-    if pts.shape[0] < len(terms):
-        raise ValueError(f"{pts.shape[0]} samples cannot determine {len(terms)} terms of degree "
-                         f"{degree}: add samples or lower the degree")
-    design = design_matrix(pts, terms, reference_radius_mm=reference_radius_mm)
-    norms = np.linalg.norm(design, axis=0)
-    if np.any(norms == 0):
-        raise ValueError("a harmonic term vanishes at every sample (e.g. all samples at the "
-                         "origin or on the z axis): spread the samples over a sphere")
-    scaled, _, rank, sing = np.linalg.lstsq(design / norms, values, rcond=None)
-    if rank < len(terms):
-        raise ValueError(f"the samples separate only {rank} of {len(terms)} terms: spread them over "
-                         "a sphere or lower the degree")
-    coef = scaled / norms
-    residual = design @ coef - values
-    alpha = np.zeros((degree + 1, degree + 1))
-    beta = np.zeros_like(alpha)
-    for (kind, n, m), value in zip(terms, coef, strict=True):
-        (alpha if kind == "cos" else beta)[n, m] = value
-    report = AxisFit(
-        residual_rms_mm=float(np.sqrt(np.mean(residual**2))),
-        residual_max_mm=float(np.max(np.abs(residual))),
-        condition_number=float(sing[0] / sing[-1]),
-        samples=int(pts.shape[0]),
-        terms=len(terms),
-    )
-    return AxisExpansion(alpha, beta, float(reference_radius_mm), float(valid_radius_mm)), report
+    pts, values = _check_samples(axis, points_device_mm, encoded_mm)
+    result = _fit_one(axis, pts, values, _table_cache(pts, reference_radius_mm), degree=int(degree),
+                      max_degree=int(degree), symmetry=symmetry, orders=orders,
+                      r0=float(reference_radius_mm), valid=float(valid_radius_mm))
+    return result.expansion, result.report
+
+
+def fit_provenance(*, method: str, samples: int, degree: int, residual_rms_mm: float,
+                   residual_max_mm: float, description: str = "", date: str | None = None) -> dict:
+    """The ``source`` object of a fitted coil model (coil model format, source kind ``fit``).
+
+    Parameters
+    ----------
+    method : str
+        How the samples were taken: ``"field-samples"`` (field maps) or ``"phantom"``.
+    samples : int
+        Number of samples (field samples over all axes, or phantom markers).
+    degree : int
+        Highest degree fitted.
+    residual_rms_mm, residual_max_mm : float
+        Residuals of the fit over all samples, mm.
+    description : str
+        Free text; a default one is made from the figures.
+    date : str, optional
+        ISO 8601 date.
+    """
+    source = {"kind": "fit", "method": str(method), "samples": int(samples), "degree": int(degree),
+              "residual_rms_mm": float(residual_rms_mm), "residual_max_mm": float(residual_max_mm),
+              "description": description or (
+                  f"least-squares fit of degree {degree} to {samples} samples ({method}); residual "
+                  f"rms {residual_rms_mm:.3g} mm, max {residual_max_mm:.3g} mm")}
+    if date is not None:
+        source["date"] = str(date)
+    return source
+
+
+def fit_samples(
+    samples_by_axis: Mapping[str, tuple[np.ndarray, np.ndarray]],
+    *,
+    degree: int | None = None,
+    max_degree: int = DEFAULT_MAX_DEGREE,
+    symmetry: str = "none",
+    reference_radius_mm: float | None = None,
+    valid_radius_mm: float | None = None,
+    label: str = "fitted",
+    description: str = "",
+    date: str | None = None,
+    method: str = "field-samples",
+) -> tuple[CoilModel, FitSummary]:
+    """Fit a coil model to encoded-position samples of the three axes, with a fit summary.
+
+    Parameters
+    ----------
+    samples_by_axis : mapping of str to (points_device_mm, encoded_mm)
+        For each of ``"x"``, ``"y"``, ``"z"``: (N, 3) device positions (mm) and
+        (N,) encoded positions (mm). Axes whose points are the same array (or
+        equal) share one harmonic table.
+    degree : int, optional
+        Degree fitted to every axis; None: chosen per axis by leave-one-out
+        cross-validation (one-standard-error rule) up to ``max_degree``.
+    max_degree : int
+        Highest degree tried when ``degree`` is None.
+    symmetry : {"none", "mirror", "axial"}
+        Terms a symmetric coil design forbids are left out (:func:`term_allowed`).
+    reference_radius_mm : float, optional
+        :math:`R_0` of the model (default: the sampled radius, rounded up to 1 mm).
+    valid_radius_mm : float, optional
+        Valid radius written to the model (default: the radius the samples of
+        all axes cover, :func:`valid_radius_from_samples`). A larger value is
+        kept, with a ``beyond-samples`` warning.
+    label, description, date, method : str
+        Label and provenance (:func:`fit_provenance`).
+
+    Returns
+    -------
+    CoilModel
+    FitSummary
+    """
+    missing = [a for a in AXES if a not in samples_by_axis]
+    if missing:
+        raise ValueError(f"samples missing for gradient axis {', '.join(missing)}; expected x, y and z")
+    if symmetry not in SYMMETRIES:
+        raise ValueError(f"unknown symmetry {symmetry!r}; expected one of {', '.join(SYMMETRIES)}")
+    checked = {a: _check_samples(a, *samples_by_axis[a]) for a in AXES}
+    sampled = min(valid_radius_from_samples(checked[a][0])[0] for a in AXES)
+    if not sampled > 0:
+        raise ValueError("all samples are at the isocenter: spread them over a sphere")
+    valid = float(valid_radius_mm) if valid_radius_mm is not None else sampled
+    r0 = float(reference_radius_mm) if reference_radius_mm is not None else float(math.ceil(sampled))
+    caches: list = []
+    results: dict[str, _AxisResult] = {}
+    for name in AXES:
+        pts, vals = checked[name]
+        tables = next((t for p, t in caches if p is pts or (p.shape == pts.shape and np.array_equal(p, pts))),
+                      None)
+        if tables is None:
+            tables = _table_cache(pts, r0)
+            caches.append((pts, tables))
+        try:
+            results[name] = _fit_one(name, pts, vals, tables, degree=degree, max_degree=max_degree,
+                                     symmetry=symmetry, orders=None, r0=r0, valid=valid)
+        except ValueError as exc:
+            raise ValueError(f"axis {name}: {exc}") from None
+    table, rms_in, max_in, growth, per_axis = _error_summary(results, valid)
+    axes = {}
+    for name, res in results.items():
+        rms_a, max_a = per_axis.get(name, (math.nan, math.nan))
+        axes[name] = _replace(res.report, predicted_error_rms_mm=rms_a, predicted_error_max_mm=max_a)
+    warnings = [w for a in AXES for w in results[a].warnings]
+    if valid > sampled * (1 + 1e-9):
+        warnings.append(FitWarning("beyond-samples", None, (
+            f"valid radius {valid:g} mm exceeds the {sampled:.1f} mm the samples cover in every "
+            "direction: the model is extrapolated there (see the error-versus-radius table)")))
+    summary = FitSummary(axes=axes, degree_choice="given" if degree is not None else "cross-validated",
+                         symmetry=symmetry, reference_radius_mm=r0, valid_radius_mm=valid,
+                         sampled_radius_mm=sampled, predicted_error_rms_mm=rms_in,
+                         predicted_error_max_mm=max_in, error_vs_radius=table, growth_exponent=growth,
+                         warnings=tuple(warnings))
+    total = sum(a.samples for a in axes.values())
+    rms_all = math.sqrt(sum(a.samples * a.residual_rms_mm**2 for a in axes.values()) / total)
+    source = fit_provenance(method=method, samples=total, degree=max(a.degree for a in axes.values()),
+                            residual_rms_mm=rms_all,
+                            residual_max_mm=max(a.residual_max_mm for a in axes.values()),
+                            description=description, date=date)
+    model = CoilModel({a: results[a].expansion for a in AXES}, label=label, source=source)
+    return model, summary
+
+
+def _replace(report: AxisFit, **changes) -> AxisFit:
+    from dataclasses import replace
+
+    return replace(report, **changes)
 
 
 def fit_coil(
@@ -233,6 +902,10 @@ def fit_coil(
     CoilModel
     dict of str to AxisFit
         The fit figures of each axis.
+
+    See Also
+    --------
+    fit_samples : degree by cross-validation, symmetry, warnings and the predicted error.
     """
     missing = [a for a in AXES if a not in samples_by_axis]
     if missing:

@@ -26,6 +26,7 @@ __all__ = [
     "FORMAT_VERSION",
     "MAX_DEGREE",
     "coil_sha256",
+    "coil_text",
     "import_table",
     "load_coil",
     "save_coil",
@@ -41,7 +42,11 @@ LINEAR_TOLERANCE = 0.25
 SOURCE_KINDS = ("design", "measurement", "fit")
 
 _TOP_KEYS = {"format", "format_version", "label", "frame", "source", "axes"}
-_SOURCE_KEYS = {"kind", "description", "date"}
+_SOURCE_KEYS = {"kind", "description", "date", "method", "samples", "degree", "residual_rms_mm",
+                "residual_max_mm"}
+#: Fit provenance (optional, source kind "fit"): integers and non-negative numbers of mm.
+_SOURCE_COUNTS = ("samples", "degree")
+_SOURCE_MM = ("residual_rms_mm", "residual_max_mm")
 _AXIS_KEYS = {"normalisation", "condon_shortley", "reference_radius_mm", "valid_radius_mm",
               "cos", "sin"}
 
@@ -129,10 +134,11 @@ def model_from_document(doc: dict, src: str) -> CoilModel:
     if "kind" in source and source["kind"] not in SOURCE_KINDS:
         raise InputError(src, f"key 'source.kind' must be one of {', '.join(SOURCE_KINDS)}")
     texts = {"label": doc.get("label", ""), "source.description": source.get("description", ""),
-             "source.date": source.get("date", "")}
+             "source.date": source.get("date", ""), "source.method": source.get("method", "")}
     for key, value in texts.items():
         if not isinstance(value, str):
             raise InputError(src, f"key '{key}' must be a string, got {value!r}")
+    _check_fit_figures(source, src)
     axes_doc = doc.get("axes")
     if not isinstance(axes_doc, dict):
         raise InputError(src, "key 'axes' missing or not an object")
@@ -143,6 +149,18 @@ def model_from_document(doc: dict, src: str) -> CoilModel:
             raise InputError(src, f"axis {name!r} missing under 'axes'")
         axes[name] = _axis_from_document(axes_doc[name], src, name)
     return CoilModel(axes=axes, label=doc.get("label", "unnamed"), source=dict(source))
+
+
+def _check_fit_figures(source: dict, src: str) -> None:
+    """The optional fit figures of ``source``: counts are integers >= 0, residuals mm >= 0."""
+    for key in _SOURCE_COUNTS:
+        value = source.get(key, 0)
+        if isinstance(value, bool) or not isinstance(value, int) or value < 0:
+            raise InputError(src, f"key 'source.{key}' must be a non-negative integer, got {value!r}")
+    for key in _SOURCE_MM:
+        value = source.get(key, 0.0)
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not value >= 0:
+            raise InputError(src, f"key 'source.{key}' must be a non-negative number of mm, got {value!r}")
 
 
 def _no_unknown(obj: dict, allowed: set, src: str, prefix: str) -> None:
@@ -247,6 +265,11 @@ def _format_document(doc: dict) -> str:
     # escapes line breaks) untouched.
     text = re.sub(r"\[\n\s*(-?\d+),\n\s*(-?\d+),\n\s*([^\s\[\]]+)\n\s*\]", r"[\1, \2, \3]", text)
     return text + "\n"
+
+
+def coil_text(model: CoilModel) -> str:
+    """The text :func:`save_coil` writes (for callers that write it within their own OutputSet)."""
+    return _format_document(model_to_document(model))
 
 
 def save_coil(model: CoilModel, path: str | Path) -> Path:
