@@ -21,7 +21,8 @@ from numba.core import cgutils, types
 from numba.extending import intrinsic
 
 __all__ = ["STEP_AFFINE", "STEP_FACTOR", "STEP_FACTOR_NODES", "STEP_FIELD", "STEP_FIELD_FACTOR",
-           "STEP_FIELD_NODES", "fold_chain", "fold_chain_and_sample", "pull_resample"]
+           "STEP_FIELD_NODES", "field_affine_field_sample", "fold_chain", "fold_chain_and_sample",
+           "pull_resample"]
 
 
 @numba.njit(inline="always", cache=True)
@@ -471,3 +472,135 @@ def fold_chain_and_sample(coef, order, fill, target_map, raw_map, program, affin
             for i in range(nx):
                 _sample_voxel(i, j, k, coef, order, fill, target_map, raw_map, program, affines, addresses,
                               sizes, dims, maps, out, missed, wx, wy, wz)
+
+
+@numba.njit(inline="always", cache=True)
+def _cell(nx, ny, nz, gi, gj, gk):
+    """Corner indices (clamped to the grid) and fractions of a continuous index ``>= -1``."""
+    bi, ti = _floor(gi)
+    bj, tj = _floor(gj)
+    bk, tk = _floor(gk)
+    if 0 <= bi < nx - 1 and 0 <= bj < ny - 1 and 0 <= bk < nz - 1:
+        i0, i1, j0, j1, k0, k1 = bi, bi + 1, bj, bj + 1, bk, bk + 1
+    else:
+        i0, i1, j0, j1 = _clamp(bi, nx), _clamp(bi + 1, nx), _clamp(bj, ny), _clamp(bj + 1, ny)
+        k0, k1 = _clamp(bk, nz), _clamp(bk + 1, nz)
+    return i0, i1, j0, j1, k0, k1, ti, tj, tk
+
+
+@numba.njit(inline="always", cache=True)
+def _corners(a, i0, i1, j0, j1, k0, k1, ti, tj, tk):
+    """Trilinear blend of a 3-D array ``a`` over the eight corners."""
+    a00 = a[i0, j0, k0] + ti * (a[i1, j0, k0] - a[i0, j0, k0])
+    a10 = a[i0, j1, k0] + ti * (a[i1, j1, k0] - a[i0, j1, k0])
+    a01 = a[i0, j0, k1] + ti * (a[i1, j0, k1] - a[i0, j0, k1])
+    a11 = a[i0, j1, k1] + ti * (a[i1, j1, k1] - a[i0, j1, k1])
+    b0 = a00 + tj * (a10 - a00)
+    b1 = a01 + tj * (a11 - a01)
+    return b0 + tk * (b1 - b0)
+
+
+@numba.njit(inline="always", cache=True)
+def _corners_c(a, c, i0, i1, j0, j1, k0, k1, ti, tj, tk):
+    """:func:`_corners` of component ``c`` of a 4-D array (indexed in place, no view)."""
+    a00 = a[i0, j0, k0, c] + ti * (a[i1, j0, k0, c] - a[i0, j0, k0, c])
+    a10 = a[i0, j1, k0, c] + ti * (a[i1, j1, k0, c] - a[i0, j1, k0, c])
+    a01 = a[i0, j0, k1, c] + ti * (a[i1, j0, k1, c] - a[i0, j0, k1, c])
+    a11 = a[i0, j1, k1, c] + ti * (a[i1, j1, k1, c] - a[i0, j1, k1, c])
+    b0 = a00 + tj * (a10 - a00)
+    b1 = a01 + tj * (a11 - a01)
+    return b0 + tk * (b1 - b0)
+
+
+@numba.njit(parallel=True, cache=True)
+def field_affine_field_sample(coef, order, fill, target_map, first, first_offset, use_first, matrix,
+                              last, last_jac, last_map, use_last, use_jac, raw_map, out, missed):
+    """:func:`fold_chain_and_sample` for the chain shape ``[W, A, G (x J)]``, unrolled.
+
+    ``W`` (optional) is a field on the target lattice, read at its nodes
+    (``first[i + o]``, the ``STEP_FIELD_NODES`` rule); ``A`` is one pull
+    matrix (the product of the chain's consecutive affines; identity if
+    none); ``G`` (optional) a field read trilinearly (ITK's rule, identity and
+    a flagged miss outside ``[-0.5, n - 0.5]``), with its own-grid factor map
+    ``last_jac`` sharing its weights (held at edge values outside). The
+    arithmetic is that of the generic kernel, step for step; the chain's
+    parameters are plain arguments rather than rows of a program, which the
+    compiler can keep in registers (``benchmarks/bench_compose.py``).
+
+    Parameters
+    ----------
+    first : (X, Y, Z, 3) float32 ndarray
+        ``W``'s displacement, RAS mm (read if ``use_first``).
+    first_offset : (3,) int64 ndarray
+        ``W``'s voxel index of target voxel (0, 0, 0).
+    matrix : (3, 4) float64 ndarray
+        ``A``, RAS mm.
+    last : (X', Y', Z', 3) float32 ndarray
+        ``G``'s displacement, RAS mm (read if ``use_last``).
+    last_jac : (X', Y', Z') float32 ndarray
+        ``G``'s factor map (read if ``use_jac``).
+    last_map : (3, 4) float64 ndarray
+        World RAS mm -> ``G``'s voxel index.
+
+    Other parameters as for :func:`fold_chain_and_sample`.
+    """
+    nx, ny, nz = out.shape
+    fx, fy, fz = first.shape[0], first.shape[1], first.shape[2]
+    gx, gy, gz = last.shape[0], last.shape[1], last.shape[2]
+    rx, ry, rz = coef.shape
+    tj, tk = (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
+    for tile in numba.prange(tj * tk):
+        wx, wy, wz = np.empty(4), np.empty(4), np.empty(4)
+        for row in range(TILE * TILE):
+            j = (tile % tj) * TILE + row % TILE
+            k = (tile // tj) * TILE + row // TILE
+            if j >= ny or k >= nz:
+                continue
+            for i in range(nx):
+                x, y, z = _point(target_map, i, j, k)
+                miss = False
+                if use_first:
+                    ii, jj, kk = i + first_offset[0], j + first_offset[1], k + first_offset[2]
+                    if 0 <= ii < fx and 0 <= jj < fy and 0 <= kk < fz:
+                        x += first[ii, jj, kk, 0]
+                        y += first[ii, jj, kk, 1]
+                        z += first[ii, jj, kk, 2]
+                    else:
+                        miss = True
+                x, y, z = _point(matrix, x, y, z)
+                f = 1.0
+                if use_last:
+                    gi, gj, gk = _point(last_map, x, y, z)
+                    if -0.5 <= gi <= gx - 0.5 and -0.5 <= gj <= gy - 0.5 and -0.5 <= gk <= gz - 0.5:
+                        i0, i1, j0, j1, k0, k1, ti, tj_, tk_ = _cell(gx, gy, gz, gi, gj, gk)
+                        dx = _corners_c(last, 0, i0, i1, j0, j1, k0, k1, ti, tj_, tk_)
+                        dy = _corners_c(last, 1, i0, i1, j0, j1, k0, k1, ti, tj_, tk_)
+                        dz = _corners_c(last, 2, i0, i1, j0, j1, k0, k1, ti, tj_, tk_)
+                        if use_jac:
+                            f = _corners(last_jac, i0, i1, j0, j1, k0, k1, ti, tj_, tk_)
+                        x += dx
+                        y += dy
+                        z += dz
+                    else:
+                        if use_jac:
+                            f = _held(last_jac, gx, gy, gz, gi, gj, gk)
+                        miss = True
+                ri, rj, rk = _point(raw_map, x, y, z)
+                if _inside(ri, rx) and _inside(rj, ry) and _inside(rk, rz):
+                    out[i, j, k] = _sample(coef, ri, rj, rk, order, wx, wy, wz) * f
+                    missed[i, j, k] = miss
+                else:
+                    out[i, j, k] = fill
+                    missed[i, j, k] = False
+
+
+@numba.njit(inline="always", cache=True)
+def _held(a, nx, ny, nz, gi, gj, gk):
+    """:func:`_factor_at` on a 3-D array: trilinear, held at its edge values beyond the grid."""
+    if gi != gi or gj != gj or gk != gk:  # NaN point: no factor
+        return 1.0
+    bi, ti = _floor(min(max(gi, -1.0), float(nx)))
+    bj, tj = _floor(min(max(gj, -1.0), float(ny)))
+    bk, tk = _floor(min(max(gk, -1.0), float(nz)))
+    return _corners(a, _clamp(bi, nx), _clamp(bi + 1, nx), _clamp(bj, ny), _clamp(bj + 1, ny),
+                    _clamp(bk, nz), _clamp(bk + 1, nz), ti, tj, tk)

@@ -401,6 +401,43 @@ class _Program:
 _NO_BUFFER = np.zeros(1, np.float32)
 
 
+#: Stand-ins for an absent first or last field of :func:`_unrolled_arguments`.
+_NO_FIELD = np.zeros((1, 1, 1, 3), np.float32, order="F")
+_NO_FACTOR = np.ones((1, 1, 1), np.float32, order="F")
+
+
+def _unrolled_arguments(steps: Sequence[Step], target_shape, target_affine: np.ndarray) -> tuple | None:
+    """Arguments of :func:`nl_unwarp._kernels.field_affine_field_sample` if the chain has its shape.
+
+    The shape is ``[W, A..., G]``, each part optional: ``W`` a field on the
+    target lattice (read at its nodes), any run of affines (multiplied into
+    one matrix), ``G`` a field anywhere with or without its own Jacobian map.
+    This covers the correction alone, motion then correction, and
+    registration then correction. Other chains (factor maps of their own,
+    fields elsewhere) return None and take the generic program.
+    """
+    rest = list(steps)
+    first, offset = _NO_FIELD, np.zeros(3, np.int64)
+    if rest and isinstance(rest[0], FieldStep) and rest[0].jacobian is None and len(rest) > 1:
+        nodes = _lattice_offset((np.linalg.inv(rest[0].affine) @ target_affine)[:3], target_shape)
+        if nodes is not None:
+            first, offset = rest[0].disp_ras_mm, nodes
+            rest = rest[1:]
+    matrix = np.eye(4)
+    while rest and isinstance(rest[0], AffineStep):
+        matrix = rest.pop(0).matrix_ras @ matrix
+    last, jac, last_map = _NO_FIELD, _NO_FACTOR, np.zeros((3, 4))
+    if rest and isinstance(rest[0], FieldStep):
+        g = rest.pop(0)
+        last, last_map = g.disp_ras_mm, _world_to_index(g.affine)
+        if g.jacobian is not None:
+            jac = g.jacobian
+    if rest:
+        return None
+    return (first, offset, first is not _NO_FIELD, np.ascontiguousarray(matrix[:3]), last, jac, last_map,
+            last is not _NO_FIELD, jac is not _NO_FACTOR)
+
+
 def _check_on_outside(on_outside: str) -> None:
     if on_outside not in ON_OUTSIDE:
         raise ValueError(f"on_outside must be one of {ON_OUTSIDE}, got {on_outside!r}")
@@ -490,6 +527,7 @@ def resample_chain(
     order: int = 3,
     fill: float = 0.0,
     on_outside: str = "warn",
+    unroll: bool = True,
 ) -> ResampledChain:
     """Resample a raw 3-D volume once through a chain onto a target grid.
 
@@ -518,13 +556,17 @@ def resample_chain(
     on_outside : {"warn", "raise", "ignore"}
         As for :func:`compose_chain`; only target points landing inside the
         raw field of view count.
+    unroll : bool
+        Let chains of the common shape ``[W, A..., G]`` take the unrolled
+        kernel (same arithmetic, faster); False forces the generic program
+        (for tests and benchmarks).
 
     Returns
     -------
     ResampledChain
         Data Fortran-ordered (x fastest), float32.
     """
-    from ._kernels import fold_chain_and_sample
+    from ._kernels import field_affine_field_sample, fold_chain_and_sample
 
     if order not in ORDERS:
         raise ValueError(f"interpolation order must be one of {ORDERS}, got {order}")
@@ -543,9 +585,14 @@ def resample_chain(
     coef = prefilter(volume, order, memory_order="F")
     out = np.empty(shape, np.float32, order="F")
     missed = np.empty(shape, np.bool_, order="F")
-    program = _Program(steps, shape, target_affine)
-    fold_chain_and_sample(coef, order, float(fill), np.ascontiguousarray(target_affine[:3]),
-                          _world_to_index(raw_affine), *program.arguments(), out, missed)
+    target_map, raw_map = np.ascontiguousarray(target_affine[:3]), _world_to_index(raw_affine)
+    unrolled = _unrolled_arguments(steps, shape, target_affine) if unroll else None
+    if unrolled is not None:
+        field_affine_field_sample(coef, order, float(fill), target_map, *unrolled, raw_map, out, missed)
+    else:
+        program = _Program(steps, shape, target_affine)
+        fold_chain_and_sample(coef, order, float(fill), target_map, raw_map, *program.arguments(),
+                              out, missed)
     result = ResampledChain(out, missed)
     _report_coverage(result.uncovered_fraction, on_outside)
     return result

@@ -227,6 +227,67 @@ def test_resample_chain_counts_only_points_inside_the_raw_image():
         resample_chain(_raw_image((12, 12, 12), 12), big, [field], shape, target, on_outside="raise")
 
 
+def _unrolled_chain(shape_name, target_shape, target_affine):
+    """Chains of the shape ``[W@nodes, A..., G]`` that the unrolled kernel takes."""
+    w, a, g = _chain()
+    w_nodes = FieldStep(np.random.default_rng(12).normal(0.0, 2.0, tuple(target_shape) + (3,)),
+                        target_affine)
+    w_larger = FieldStep(np.random.default_rng(13).normal(0.0, 2.0, (15, 17, 14, 3)),
+                         _shifted(target_affine, (-1, -2, 0)))  # a grown target grid, read at nodes
+    return {"W, A, A, G+J": [w_nodes, a, _affine(4), g],
+            "W (grown), A, G": [w_larger, a, FieldStep(g.disp_ras_mm, g.affine)],
+            "A, G+J": [a, g],
+            "G+J": [g],
+            "W, A": [w_nodes, a]}[shape_name]
+
+
+UNROLLED = ["W, A, A, G+J", "W (grown), A, G", "A, G+J", "G+J", "W, A"]
+
+
+@pytest.mark.parametrize("order", [0, 1, 3])
+@pytest.mark.parametrize("shape_name", UNROLLED)
+def test_unrolled_chains_match_scipy_at_the_chain_points(order, shape_name):
+    """The unrolled kernel (chains [W, A..., G]) against scipy.ndimage.map_coordinates at the end
+    points of the plain-numpy chain, times its factor; misses as the plain-numpy chain has them."""
+    from nl_unwarp.compose import _unrolled_arguments
+
+    shape = (14, 15, 13)
+    aff = _oblique(shape, (2.5, 3.0, 3.2), 20.0, (0, 0, 0))
+    chain = _unrolled_chain(shape_name, shape, aff)
+    assert _unrolled_arguments(chain, shape, aff) is not None  # the path under test
+    raw_shape = (22, 20, 19)
+    raw_aff = _oblique(raw_shape, (2.6, 2.8, 3.0), -5.0, (0.5, -0.5, 1.0))
+    raw = _raw_image(raw_shape, 10)
+    got = resample_chain(raw, raw_aff, chain, shape, aff, order=order, fill=FILL, on_outside="ignore")
+    ref_pts, ref_factor, ref_missed = _reference(chain, _grid_points(shape, aff))
+    inv = np.linalg.inv(raw_aff)
+    idx = np.moveaxis(ref_pts @ inv[:3, :3].T + inv[:3, 3], -1, 0)
+    coef = ndimage.spline_filter(raw.astype(float), order=order, mode="mirror") if order > 1 else raw
+    expected = ndimage.map_coordinates(coef, idx, order=order, mode="mirror", prefilter=False) * ref_factor
+    inside = np.all((idx >= -0.5) & (idx <= np.array(raw_shape)[:, None, None, None] - 0.5), axis=0)
+    expected = np.where(inside, expected, FILL)
+    assert 0.2 < inside.mean() < 1.0
+    close = np.isclose(got.data, expected, rtol=0, atol=SAMPLE_ATOL)
+    assert close.mean() >= (NEAREST_AGREEMENT if order == 0 else 1.0)
+    np.testing.assert_array_equal(got.uncovered, ref_missed & inside)
+    # The generic program gives the same numbers (same arithmetic, step for step).
+    generic = resample_chain(raw, raw_aff, chain, shape, aff, order=order, fill=FILL, on_outside="ignore",
+                             unroll=False)
+    np.testing.assert_allclose(got.data, generic.data, rtol=0, atol=SAMPLE_ATOL)
+    np.testing.assert_array_equal(got.uncovered, generic.uncovered)
+
+
+def test_other_chain_shapes_take_the_generic_program():
+    from nl_unwarp.compose import _unrolled_arguments
+
+    shape = (14, 15, 13)
+    aff = _oblique(shape, (2.5, 3.0, 3.2), 20.0, (0, 0, 0))
+    w, a, g = _chain()  # w is not on the target lattice
+    factor = FactorStep(np.ones((4, 4, 4)), aff)
+    for chain in ([w, a, g], [a, g, a], [factor, g], [g, g], [a, FieldStep(g.disp_ras_mm, g.affine), factor]):
+        assert _unrolled_arguments(chain, shape, aff) is None
+
+
 def test_fields_in_nifti_order_are_not_copied():
     disp = np.zeros((5, 6, 7, 3), np.float32, order="F")
     jac = np.ones((5, 6, 7), np.float32, order="F")
