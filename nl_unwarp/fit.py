@@ -63,11 +63,18 @@ COMPARISON_STEP = 2
 #: Condition number of the column-normalised design above which a warning is
 #: returned: measurement noise can then be amplified ~1e4-fold in the coefficients
 #: (the fitted values at the samples are not affected, extrapolation is). Samples on a
-#: sphere give 1-10 at degree 15; samples filling a ball about 1e3 (measured here).
+#: sphere or in a ball about the isocenter give < 3 even at degree 15 (solid harmonics of
+#: different degree or order are orthogonal on every sphere about the origin); one-sided
+#: sampling does not: measured 1e4 for a hemisphere at degree 6, 7e7 at degree 11, 4e7 for
+#: one octant at degree 6.
 CONDITION_WARN = 1e4
-#: Number of direction bins (a Fibonacci lattice, ~36 degrees apart) in which
-#: samples are looked for: the coverage check and the valid radius use them.
-DIRECTION_BINS = 32
+#: Direction bins (a Fibonacci lattice) in which samples are looked for, for the
+#: coverage check and the valid radius: one bin per this many samples, at least
+#: 32 (~36 degrees apart, so that a few hundred random samples fill all) and at most
+#: 512 (~9 degrees; the bin width biases the valid radius of a box's samples up by
+#: 1/cos(half-width), 0.3 % at 512 bins).
+SAMPLES_PER_BIN = 20
+DIRECTION_BINS = (32, 512)
 #: A fitted linear coefficient further than this from 1 means the stated nominal
 #: gradient is not the coil's gradient at the isocenter (common practice, no source).
 LINEAR_WARN = 0.05
@@ -385,15 +392,16 @@ def _fibonacci_directions(count: int) -> np.ndarray:
     return np.stack([rho * np.cos(phi), rho * np.sin(phi), z], -1)
 
 
-def valid_radius_from_samples(points_device_mm: np.ndarray, *, bins: int = DIRECTION_BINS
+def valid_radius_from_samples(points_device_mm: np.ndarray, *, bins: int | None = None
                               ) -> tuple[float, float]:
     """Radius about the isocenter that the samples cover in every direction.
 
     Parameters
     ----------
     points_device_mm : (N, 3) ndarray, mm
-    bins : int
-        Number of direction bins (nearest of a Fibonacci lattice of directions).
+    bins : int, optional
+        Number of direction bins (nearest of a Fibonacci lattice of directions);
+        default: one per :data:`SAMPLES_PER_BIN` samples within :data:`DIRECTION_BINS`.
 
     Returns
     -------
@@ -411,6 +419,9 @@ def valid_radius_from_samples(points_device_mm: np.ndarray, *, bins: int = DIREC
     off_centre = radius > 0
     if not np.any(off_centre):
         return 0.0, 1.0
+    if bins is None:
+        low, high = DIRECTION_BINS
+        bins = int(np.clip(pts.shape[0] // SAMPLES_PER_BIN, low, high))
     dirs = _fibonacci_directions(bins)
     nearest = np.argmax((pts[off_centre] / radius[off_centre, None]) @ dirs.T, axis=1)
     reach = np.zeros(bins)
@@ -524,8 +535,8 @@ def _fit_one(axis: str | None, points: np.ndarray, values: np.ndarray, tables, *
                              "a sphere or lower the degree")
     candidates = [d for d in wanted if _determinable(nested, counts[d], samples)[0]]
     if not candidates:
-        raise ValueError(f"the {samples} samples of axis {axis} cannot determine even a degree-1 fit: "
-                         "spread them over a sphere")
+        raise ValueError(f"the {samples} samples cannot determine even a degree-1 fit: spread them "
+                         "over a sphere")
     scores = _loo_scores(nested, [counts[d] for d in candidates])
     if degree is None:
         best = int(np.argmin([s[0] for s in scores]))
