@@ -1,0 +1,159 @@
+"""``nl-unwarp fit samples`` end to end, the FitFieldSamples Interface, and bad input.
+
+Outside references: magpylib's Biot-Savart fields of the tests' coil set (Golay saddles and a
+Maxwell pair, ``tests/coils.py``) are the truth the fitted model file must reproduce, and
+``hashlib`` the SHA-256 the summary records for the written file.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+
+import numpy as np
+import pytest
+from coils import coil_set, encode_direct
+
+from nl_unwarp.cli import main
+from nl_unwarp.coil import AXES
+from nl_unwarp.io.coilfile import load_coil
+from nl_unwarp.io.samples import write_field_samples
+
+#: Issue check through the command line: the encoded position inside the sampled sphere, mm.
+INSIDE_TOL_MM = 0.05
+SAMPLED_RADIUS_MM = 150.0
+SAMPLES = 900
+
+
+@pytest.fixture(scope="module")
+def sample_dir(tmp_path_factory):
+    """Sample tables of the Biot-Savart coil set on a sphere, and truth at points inside it."""
+    folder = tmp_path_factory.mktemp("samples")
+    coils = coil_set()
+    rng = np.random.default_rng(8)
+    v = rng.normal(size=(SAMPLES, 3))
+    points = SAMPLED_RADIUS_MM * v / np.linalg.norm(v, axis=1, keepdims=True)
+    for name in AXES:
+        coil = coils[name]
+        gradient_mT_per_m = coil.gradient_t_per_m * 1e3
+        bz_mT = coil.encoded_mm(points) * gradient_mT_per_m * 1e-3
+        write_field_samples(folder / f"{name}.tsv", points, bz_mT, gradient_mT_per_m=gradient_mT_per_m,
+                            axis=name, comment="invented Biot-Savart coil set (tests)")
+    inside = rng.normal(size=(300, 3))
+    inside *= (SAMPLED_RADIUS_MM * rng.uniform(0, 1, (300, 1)) ** (1 / 3)
+               / np.linalg.norm(inside, axis=1, keepdims=True))
+    return {"folder": folder, "inside": inside, "truth": encode_direct(coils, inside)}
+
+
+def _argv(folder, out, *extra):
+    return ["--quiet", "fit", "samples", "--x", str(folder / "x.tsv"), "--y", str(folder / "y.tsv"),
+            "--z", str(folder / "z.tsv"), "--out", str(out), *extra]
+
+
+def test_fit_samples_writes_a_model_that_reproduces_biot_savart(sample_dir, tmp_path, capsys):
+    out = tmp_path / "out" / "coil.json"
+    summary_path = tmp_path / "out" / "fit.json"
+    report = tmp_path / "out" / "report"
+    code = main(_argv(sample_dir["folder"], out, "--degree", "11", "--symmetry", "mirror",
+                      "--out-summary", str(summary_path), "--report", str(report), "--date", "2026-12-02"))
+    stdout = capsys.readouterr().out
+    assert code == 0
+    model = load_coil(out)
+    predicted = model.encode(sample_dir["inside"], jacobian=False)[0]
+    error = np.linalg.norm(predicted - sample_dir["truth"], axis=-1)
+    assert error.max() < INSIDE_TOL_MM
+    assert model.source["kind"] == "fit" and model.source["method"] == "field-samples"
+    assert model.source["samples"] == 3 * SAMPLES and model.source["date"] == "2026-12-02"
+    assert model.valid_radius_mm == pytest.approx(SAMPLED_RADIUS_MM)
+    summary = json.loads(summary_path.read_text())
+    assert summary["coil_model"]["sha256"] == hashlib.sha256(out.read_bytes()).hexdigest()
+    assert summary["symmetry"] == "mirror" and summary["predicted_error_max_mm"] < INSIDE_TOL_MM
+    assert {a: summary["axes"][a]["degree"] for a in AXES} == dict.fromkeys(AXES, 11)
+    page = (report / "coil-fit.html").read_text()
+    for needle in ("Research use.", 'id="fig-residuals"', 'id="fig-error-radius"', 'id="coefficients"',
+                   'id="growth"', "grows fast"):
+        assert needle in page
+    coil_page = report / f"coil-{summary['coil_model']['sha256'][:12]}.html"
+    assert coil_page.exists() and coil_page.name in page
+    assert "predicted error" in stdout and "research" in stdout.lower()
+
+
+def test_fit_samples_chooses_the_degree(sample_dir, tmp_path, capsys):
+    out = tmp_path / "coil.json"
+    assert main(_argv(sample_dir["folder"], out, "--max-degree", "9", "--symmetry", "axial")) == 0
+    stdout = capsys.readouterr().out
+    model = load_coil(out)
+    # Noise-free Biot-Savart samples support every degree tried: the highest is chosen, and said.
+    assert model.degree == 9
+    assert "degree-at-limit" in stdout
+    assert np.count_nonzero(model.axes["z"].alpha[:, 1:]) == 0
+
+
+def _bad_tables(folder, tmp_path):
+    """Variants of the good sample folder, each with one fault."""
+    cases = {}
+    text = (folder / "z.tsv").read_text().splitlines()
+    broken = text[:6] + ["1.0\t2.0\tthree\t0.1"] + text[6:]
+    (tmp_path / "broken.tsv").write_text("\n".join(broken) + "\n")
+    cases["cell"] = (["--z", str(tmp_path / "broken.tsv")], "broken.tsv: line 7, column z_mm")
+    cases["missing"] = (["--z", str(tmp_path / "none.tsv")], "none.tsv: field sample file not found")
+    cases["gradient-conflict"] = (["--gradient-mT-per-m", "40"], "the file states")
+    cases["gradient-count"] = (["--gradient-mT-per-m", "1", "2"], "--gradient-mT-per-m: give one value")
+    cases["degree"] = (["--degree", "eleven"], "--degree: 'eleven' is neither")
+    cases["frame"] = (["--table-position", "0", "0", "0"], "NIfTI field maps only")
+    few = text[:4] + text[4:24]
+    (tmp_path / "few.tsv").write_text("\n".join(few) + "\n")
+    cases["few"] = (["--z", str(tmp_path / "few.tsv"), "--degree", "6"], "few.tsv: axis z: 20 samples cannot")
+    scaled = [line if line.startswith("#") or line.startswith("x_mm") else
+              "\t".join(line.split("\t")[:3] + [repr(2 * float(line.split("\t")[3]))]) for line in text]
+    (tmp_path / "scaled.tsv").write_text("\n".join(scaled) + "\n")
+    cases["linear"] = (["--z", str(tmp_path / "scaled.tsv"), "--degree", "5"],
+                       "scaled.tsv: gradient_mT_per_m: the fitted linear term is 2")
+    return cases
+
+
+@pytest.mark.parametrize("case", ["cell", "missing", "gradient-conflict", "gradient-count", "degree", "frame",
+                                  "few", "linear"])
+def test_bad_input_fails_with_one_line_and_writes_nothing(sample_dir, tmp_path, capsys, case):
+    extra, expected = _bad_tables(sample_dir["folder"], tmp_path)[case]
+    outdir = tmp_path / "out"
+    argv = _argv(sample_dir["folder"], outdir / "coil.json", "--out-summary", str(outdir / "s.json"),
+                 "--report", str(outdir / "report"), *extra)
+    code = main(argv)
+    captured = capsys.readouterr()
+    assert code == 1
+    lines = captured.err.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("nl-unwarp: error: ") and expected in lines[0], lines
+    assert captured.out == ""
+    assert not outdir.exists() or not any(outdir.rglob("*"))
+
+
+def test_usage_errors_exit_2(sample_dir, tmp_path, capsys):
+    with pytest.raises(SystemExit) as info:
+        main(["fit", "samples", "--x", "a.tsv", "--out", str(tmp_path / "c.json")])
+    assert info.value.code == 2
+    with pytest.raises(SystemExit) as info:
+        main(["fit"])
+    assert info.value.code == 2
+    assert not any(tmp_path.iterdir())
+
+
+def test_the_interface_writes_what_the_command_writes(sample_dir, tmp_path, capsys):
+    from nl_unwarp.interfaces.fit import FitFieldSamples
+
+    folder = sample_dir["folder"]
+    cli_out = tmp_path / "cli.json"
+    assert main(_argv(folder, cli_out, "--degree", "7", "--date", "2026-12-02")) == 0
+    node_dir = tmp_path / "node"
+    node_dir.mkdir()
+    cwd = os.getcwd()
+    try:
+        os.chdir(node_dir)
+        result = FitFieldSamples(x_samples=str(folder / "x.tsv"), y_samples=str(folder / "y.tsv"),
+                                 z_samples=str(folder / "z.tsv"), degree=7, date="2026-12-02").run()
+    finally:
+        os.chdir(cwd)
+    assert result.outputs.out_coil and os.path.exists(result.outputs.out_report)
+    with open(result.outputs.out_coil, encoding="utf-8") as node_coil:
+        assert json.load(node_coil)["axes"] == json.loads(cli_out.read_text())["axes"]
