@@ -22,10 +22,11 @@ UNFINISHED_MARKS = (".partial", ".tmp", "~")
 RUN_TIMEOUT_S = 600
 
 
-def cli_command(bids_dir: Path, out_dir: Path, work_dir: Path, *options: str) -> list[str]:
+def cli_command(bids_dir: Path, out_dir: Path, work_dir: Path, *options: str,
+                quiet: bool = True) -> list[str]:
     """The BIDS-App command line (options after the positionals, as the parser wants)."""
     return [sys.executable, "-m", "nl_unwarp.cli", str(bids_dir), str(out_dir), "participant",
-            "-w", str(work_dir), "--quiet", *options]
+            "-w", str(work_dir), *(["--quiet"] if quiet else []), *options]
 
 
 def child_env(**changes: str | None) -> dict[str, str]:
