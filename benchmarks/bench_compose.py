@@ -8,7 +8,8 @@
   target grid through ``[W, A, det J, G]``: a registration warp ``W`` on the
   target grid, an affine ``A`` (6 degrees, 3 % scale), our correction ``G``
   with its Jacobian factor, in one pass (:func:`nl_unwarp.compose.resample_chain`:
-  no composed field is stored);
+  no composed field is stored); the chain has the shape the unrolled kernel
+  takes, and the generic program is timed beside it;
 * **two-pass** (for reference): the composed field stored on the target grid
   (:func:`~nl_unwarp.compose.compose_chain`), then resampled through
   (:func:`~nl_unwarp.resample.resample_volume`), as a tool that needs the
@@ -120,7 +121,7 @@ def main() -> None:
     resample_volume(raw[:16, :16, :16], _affine((16, 16, 16)), folded.disp_ras_mm, _affine((8, 8, 8)),
                     jacobian=folded.factor)
 
-    stages = ("warp", "correct", "grown warp", "once", "compose", "apply")
+    stages = ("warp", "correct", "grown warp", "once", "once generic", "compose", "apply")
     wall = {s: [] for s in stages}
     cpu = {s: [] for s in stages}
 
@@ -138,6 +139,8 @@ def main() -> None:
         chain = chain_of(grown)
         once = record("once", lambda c=chain: resample_chain(raw, raw_aff, c, shape, target_aff,
                                                              on_outside="ignore"))
+        record("once generic", lambda c=chain: resample_chain(raw, raw_aff, c, shape, target_aff,
+                                                              on_outside="ignore", unroll=False))
         composed = record("compose", lambda c=chain: compose_chain(c, shape, target_aff, raw_shape=shape,
                                                                    raw_affine=raw_aff, on_outside="ignore"))
         two = record("apply", lambda f=composed: resample_volume(raw, raw_aff, f.disp_ras_mm, target_aff,
@@ -155,6 +158,7 @@ def main() -> None:
     print(f"{'stage':34s} {'wall s':>8s} {'cpu s':>8s}")
     labels = {"warp": "compute_warp, raw grid", "correct": "correct_image (cubic, x det J)",
               "grown warp": "compute_warp, grown grid", "once": "resample_chain (one pass)",
+              "once generic": "  the same, generic program",
               "compose": "compose_chain (stored field)", "apply": "resample_volume through it"}
     for s in stages:
         print(f"{labels[s]:34s} {med_w[s]:8.2f} {med_c[s]:8.2f}")
@@ -168,7 +172,8 @@ def main() -> None:
             ("once / plain, fields given", ("once",), plain),
             ("two-pass / plain, with the warps", ("grown warp", "compose", "apply"), plain),
             ("two-pass / plain, fields given", ("compose", "apply"), plain),
-            ("once / correct_image (resampling alone)", ("once",), ("correct",))]
+            ("once / correct_image (resampling alone)", ("once",), ("correct",)),
+            ("unrolled / generic program (one pass)", ("once",), ("once generic",))]
     print(f"{'ratio (target ' + str(TARGET_RATIO) + ')':42s} {'wall':>6s} {'cpu':>6s}")
     for label, parts, base in rows:
         rw, rc = ratios(parts, base)

@@ -434,18 +434,28 @@ def _cmd_bids_app(args, progress: _Progress) -> None:
 
 
 def _cmd_compose(args, progress: _Progress) -> None:
-    from .interfaces.compose import compose_transform_files, resample_once_file
+    from .io.atomic import OutputSet
 
     if bool(args.source) != bool(args.out_image):
         raise InputError("--source/--out-image", "give both: the raw image and where to write it resampled")
     if not (args.out_image or args.out_field or args.out_composite or args.out_factor):
         raise InputError("compose", "nothing to write: give --out-image, --out-field, --out-factor "
                                     "or --out-composite")
+    with OutputSet() as sink:  # the image and the transforms appear together or not at all
+        _compose_outputs(args, progress, sink)
+    for path in (args.out_image, args.out_field, args.out_factor, args.out_composite):
+        if path:
+            print(f"wrote            {path}")
+
+
+def _compose_outputs(args, progress: _Progress, sink) -> None:
+    from .interfaces.compose import compose_transform_files, resample_once_file
+
     if args.out_image:
         progress.step(f"resampling {args.source} once through {len(args.transforms)} transform file(s)")
         once = resample_once_file(args.source, args.transforms, args.out_image, reference=args.reference,
                                   jacobian_map=args.jacobian_map, order=args.order, fill=args.fill,
-                                  on_outside=args.on_outside)
+                                  on_outside=args.on_outside, sink=sink)
         print(f"resampled once   {once['volumes']} volume(s); uncovered "
               f"{100 * once['uncovered_fraction']:.2f} % of the reference grid")
     if args.out_field or args.out_composite or args.out_factor:
@@ -454,15 +464,12 @@ def _cmd_compose(args, progress: _Progress) -> None:
         summary = compose_transform_files(args.transforms, args.reference, out_field=args.out_field,
                                           out_composite=args.out_composite, out_factor=args.out_factor,
                                           raw=args.raw or args.source, jacobian_map=args.jacobian_map,
-                                          on_outside=args.on_outside)
+                                          on_outside=args.on_outside, sink=sink)
         print(f"chain            {' -> '.join(summary['steps'])} (first applied first to a reference "
               "point)")
         if "max_displacement_mm" in summary:
             print(f"displacement     max {summary['max_displacement_mm']:.3f} mm; uncovered "
                   f"{100 * summary['uncovered_fraction']:.2f} % of the reference grid")
-    for path in (args.out_image, args.out_field, args.out_factor, args.out_composite):
-        if path:
-            print(f"wrote            {path}")
 
 
 COMMANDS = {"warp": _cmd_warp, "correct": _cmd_correct, "describe": _cmd_describe,

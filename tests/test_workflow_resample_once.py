@@ -345,3 +345,21 @@ def test_functional_end_to_end(tmp_path):
     e = EDGE_VOXELS
     inner = (slice(e, -e),) * 3
     np.testing.assert_allclose((ext * jac)[inner], once[..., 0][inner], atol=SITK_ATOL)
+
+
+def test_cli_compose_writes_the_image_and_the_transforms_together_or_not_at_all(small_chain, capsys):
+    """A failure in the second output (a composite suffix that cannot hold the chain) leaves
+    neither the resampled image nor the field behind, nor any temporary file."""
+    root, files, _, _ = small_chain
+    out = root / "together"
+    code = cli_main(["--quiet", "compose", *map(str, files), "--reference", str(root / "ref.nii.gz"),
+                     "--source", str(root / "raw.nii.gz"), "--out-image", str(out / "once.nii.gz"),
+                     "--out-field", str(out / "composed.nii.gz"), "--out-composite", str(out / "chain.txt")])
+    assert code == 1
+    assert "chain.txt" in capsys.readouterr().err
+    assert not out.exists()  # the folder it made is gone too
+    code = cli_main(["--quiet", "compose", *map(str, files), "--reference", str(root / "ref.nii.gz"),
+                     "--source", str(root / "raw.nii.gz"), "--out-image", str(out / "once.nii.gz"),
+                     "--out-field", str(out / "composed.nii.gz")])
+    assert code == 0
+    assert sorted(p.name for p in out.iterdir()) == ["composed.nii.gz", "once.nii.gz"]

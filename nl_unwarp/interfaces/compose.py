@@ -77,8 +77,16 @@ def _with_jacobian(chain: list, factor, source) -> list:
     return chain[:-1] + [factor, chain[-1]]
 
 
+def _own_set(sink, factory):
+    """``sink`` left to its owner to commit, or a new set committed on leaving the block."""
+    import contextlib
+
+    return contextlib.nullcontext(sink) if sink is not None else factory()
+
+
 def compose_transform_files(transforms, reference, *, out_field=None, out_composite=None,
-                            out_factor=None, raw=None, jacobian_map=None, on_outside: str = "warn") -> dict:
+                            out_factor=None, raw=None, jacobian_map=None, on_outside: str = "warn",
+                            sink=None) -> dict:
     """Fold transform files into one ITK displacement field on a reference grid.
 
     Parameters
@@ -102,6 +110,9 @@ def compose_transform_files(transforms, reference, *, out_field=None, out_compos
         Our correction's Jacobian determinant map (see module doc).
     on_outside : {"warn", "raise", "ignore"}
         Target points that meet a field outside its grid (ITK would apply identity there).
+    sink : OutputSet, optional
+        Write into this set (the caller commits it with other outputs); default: a set
+        of this call's own, committed on return.
 
     Returns
     -------
@@ -127,7 +138,7 @@ def compose_transform_files(transforms, reference, *, out_field=None, out_compos
     raw_img = load_image(raw) if raw is not None else None
     summary = {"steps": ["affine" if isinstance(s, AffineStep) else
                          "factor" if isinstance(s, FactorStep) else "field" for s in chain]}
-    with OutputSet() as out:
+    with _own_set(sink, OutputSet) as out:
         if out_field is not None or out_factor is not None:
             try:
                 composed = compose_chain(chain, ref.spatial_shape, ref.affine,
@@ -166,7 +177,7 @@ def _resample_volume_once(volume, affine, chain, shape, ref_affine, *, order, fi
 
 def resample_once_file(source, transforms, out_file, *, reference=None, volume_transforms=None,
                        jacobian_map=None, order: int = 3, fill: float = 0.0,
-                       on_outside: str = "warn") -> dict:
+                       on_outside: str = "warn", sink=None) -> dict:
     """Resample a 3-D or 4-D raw image once through a chain of transform files.
 
     The chain is followed from every voxel of the reference grid and the raw
@@ -195,6 +206,8 @@ def resample_once_file(source, transforms, out_file, *, reference=None, volume_t
         Value outside the raw field of view.
     on_outside : {"warn", "raise", "ignore"}
         Target points that meet a field outside its grid.
+    sink : OutputSet, optional
+        As for :func:`compose_transform_files`.
 
     Returns
     -------
@@ -234,8 +247,8 @@ def resample_once_file(source, transforms, out_file, *, reference=None, volume_t
         except CoverageError as exc:
             raise InputError(str(reference or source), str(exc)) from None
         uncovered = max(uncovered, frac)
-    with OutputSet() as sink:
-        write_image(sink, out_file, out if data.ndim == 4 else out[..., 0], ref.affine,
+    with _own_set(sink, OutputSet) as out_set:
+        write_image(out_set, out_file, out if data.ndim == 4 else out[..., 0], ref.affine,
                     header=image.header)
     return {"uncovered_fraction": uncovered, "volumes": int(volumes.shape[3])}
 
