@@ -594,6 +594,9 @@ def _add_fit_parser(sub) -> None:
                        description="Fit a coil model to measurements of the gradient system. " + CAUTION)
     kinds = p.add_subparsers(dest="fit_kind", required=True, metavar="KIND")
     _add_fit_samples_parser(kinds)
+    from .cli_phantom import add_fit_phantom_parser
+
+    add_fit_phantom_parser(kinds, _add_frame_options)
 
 
 def _add_fit_samples_parser(kinds) -> None:
@@ -679,6 +682,15 @@ def _cmd_fit_samples(args, progress: _Progress) -> None:
 
 
 FIT_KINDS = {"samples": _cmd_fit_samples}
+
+
+def _cmd_fit_phantom(args, progress: _Progress) -> None:
+    from .cli_phantom import run_fit_phantom
+
+    run_fit_phantom(args, progress)
+
+
+FIT_KINDS["phantom"] = _cmd_fit_phantom
 
 
 def _cmd_fit(args, progress: _Progress) -> None:

@@ -2,10 +2,11 @@
 
 Detection finds small bright blobs on a smooth background (the phantom body):
 
-1. the background is a grey-scale opening of the image with a box wider than a
-   marker (a bright blob narrower than the box is removed, the body stays);
-2. the excess over it, lightly smoothed, is thresholded at a fraction of the
-   markers' typical peak (and above the noise), and the connected components
+1. the background is a grey-scale opening of the lightly smoothed image with a
+   box wider than a marker (a bright blob narrower than the box is removed, the
+   body stays);
+2. the smoothed excess over it is thresholded at a fraction of the markers'
+   typical peak (and above the noise), and the connected components
    are labelled (``scipy.ndimage.label``, 26-connectivity);
 3. components are gated by size (equivalent diameter against the definition's)
    and shape (ratio of the principal second moments), which rejects noise
@@ -65,8 +66,10 @@ THRESHOLD_FRACTION = 0.35
 #: ... and at least this many robust noise standard deviations above zero.
 THRESHOLD_NOISE_SIGMAS = 5.0
 #: Accepted equivalent diameter of a thresholded component, as a fraction of the
-#: expected marker diameter (the threshold keeps the inner part: about 0.6-1.1).
-DIAMETER_RANGE = (0.3, 1.6)
+#: typical (low end) and largest (high end) marker diameter: the threshold keeps
+#: about 0.8-1.1 of a marker's diameter; a single 2 mm voxel (2.5 mm) is below
+#: the low end for 6 mm markers.
+DIAMETER_RANGE = (0.5, 1.6)
 #: Largest ratio of the principal second moments (standard deviations) of a
 #: component: a sphere sampled on a grid stays below about 1.5; rods and sheets
 #: are far above.
@@ -193,6 +196,7 @@ def detect_markers(
     affine: np.ndarray,
     *,
     marker_diameter_mm: float,
+    largest_diameter_mm: float | None = None,
     threshold: float | None = None,
     smoothing_mm: float | None = None,
 ) -> Detections:
@@ -206,15 +210,20 @@ def detect_markers(
         Voxel index -> world RAS mm.
     marker_diameter_mm : float
         Typical marker diameter (from the phantom definition), mm: sets the
-        background box, the centroid ball and the size gate.
+        threshold's reference blobs and the lower end of the size gate.
+    largest_diameter_mm : float, optional
+        Largest marker diameter of the definition (default: the typical one):
+        sets the background box, the centroid ball and the upper end of the
+        size gate.
     threshold : float, optional
         Threshold of the smoothed excess image; by default
         :data:`THRESHOLD_FRACTION` of the median peak of the candidate blobs,
         and at least :data:`THRESHOLD_NOISE_SIGMAS` noise standard deviations.
     smoothing_mm : float, optional
-        Gaussian smoothing (standard deviation, mm) of the excess image before
-        thresholding (default: half a voxel of the largest spacing). The
-        centroids are always taken from the unsmoothed excess.
+        Gaussian smoothing (standard deviation, mm) of the image for the
+        background and the threshold (default: half the largest voxel
+        spacing). The centroids are always taken from the unsmoothed image
+        minus the background.
 
     Returns
     -------
@@ -227,17 +236,26 @@ def detect_markers(
     zooms = _zooms(affine)
     if not marker_diameter_mm > 0:
         raise ValueError(f"marker diameter must be positive, got {marker_diameter_mm}")
-    # A box of two diameters (plus a voxel) removes a marker wherever it sits in it.
-    box = np.maximum(np.ceil((2.0 * marker_diameter_mm) / zooms).astype(int) | 1, 3)
-    excess = data - _background(data, box)
+    largest = max(float(largest_diameter_mm or marker_diameter_mm), float(marker_diameter_mm))
+    # A box of two diameters (odd, in voxels) removes a marker wherever it sits in it.
+    box = np.maximum(np.ceil((2.0 * largest) / zooms).astype(int) | 1, 3)
     sigma_mm = 0.5 * float(zooms.max()) if smoothing_mm is None else float(smoothing_mm)
-    smooth = ndimage.gaussian_filter(excess, sigma_mm / zooms, mode="nearest") if sigma_mm > 0 else excess
+    smooth = ndimage.gaussian_filter(data, sigma_mm / zooms, mode="nearest") if sigma_mm > 0 else data
+    # The opening of the smoothed image: a minimum over the box is biased low by the
+    # noise, less so after smoothing; the median excess measures what is left of it.
+    background = _background(smooth, box)
+    excess = data - background
+    smooth = smooth - background
     noise = _noise_sigma(excess)
-    floor = THRESHOLD_NOISE_SIGMAS * noise
+    floor = float(np.median(smooth)) + THRESHOLD_NOISE_SIGMAS * noise
     if threshold is None:
         # Candidate blobs: local maxima above the noise floor, of marker scale.
         size = tuple(int(b) for b in np.maximum(np.ceil(marker_diameter_mm / zooms).astype(int) | 1, 3))
         peaks = smooth[(smooth == ndimage.maximum_filter(smooth, size=size)) & (smooth > floor)]
+        # The markers are most of the strong peaks: the median of those above half the
+        # 95th percentile (weak maxima at the body's edge and a few bright intruders aside).
+        if peaks.size:
+            peaks = peaks[peaks >= 0.5 * np.percentile(peaks, 95)]
         level = float(np.median(peaks)) if peaks.size else np.inf
         threshold = max(THRESHOLD_FRACTION * level, floor)
     labels, count = ndimage.label(smooth > threshold, structure=np.ones((3, 3, 3), bool))
@@ -249,7 +267,7 @@ def detect_markers(
     voxel_mm3 = abs(np.linalg.det(affine[:3, :3]))
     volumes = ndimage.sum_labels(np.ones_like(smooth), labels, index) * voxel_mm3
     diameters = np.cbrt(6.0 * volumes / np.pi)
-    lo, hi = (f * marker_diameter_mm for f in DIAMETER_RANGE)
+    lo, hi = DIAMETER_RANGE[0] * marker_diameter_mm, DIAMETER_RANGE[1] * largest
     objects = ndimage.find_objects(labels)
     keep_centroids, keep_diam, keep_peaks = [], [], []
     for lab, (sl, diam) in enumerate(zip(objects, diameters, strict=True), start=1):
@@ -269,7 +287,7 @@ def detect_markers(
                 rejected["elongated"] += 1
                 continue
         start = ijk.mean(0)
-        centre = _refine_centroid(excess, affine, start, 0.5 * marker_diameter_mm + 1.5 * zooms.max())
+        centre = _refine_centroid(excess, affine, start, 0.5 * largest + 1.5 * zooms.max())
         if centre is None:
             rejected["small"] += 1
             continue

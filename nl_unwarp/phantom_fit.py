@@ -38,7 +38,7 @@ degree-0 and degree-1 terms, which for a coil of mirror-symmetric design change
 only at third order in ``e``; several table positions do not change that (the
 same shifted model explains them all: measured standard errors of 4-14 mm with
 three scans). ``delta`` is therefore fitted only when
-the mirror symmetry of the design is imposed (``symmetry="mirror"``: a shift
+the symmetry of the design is imposed (``symmetry="mirror"`` or ``"axial"``: a shift
 makes terms of the wrong parity: about 0.1 mm from one scan of 464 markers),
 and several scans at different table positions then sample the coil over a
 longer stretch of z and tighten it (about 0.04 mm from three).
@@ -62,7 +62,7 @@ from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
 from .coil import AXES, AxisExpansion, CoilModel, ideal_axis
-from .fit import fit_terms
+from .fit import SYMMETRIES, fit_terms
 from .frames import DeviceFrame
 from .harmonics import iter_harmonics
 from .markers import RigidPose, kabsch
@@ -93,7 +93,6 @@ ROTATION_STEP_RAD = 1e-6
 #: A marker whose residual norm exceeds this many robust scales is flagged
 #: as an outlier in the residual table.
 OUTLIER_SCALES = 5.0
-SYMMETRIES = ("none", "mirror")
 
 
 @dataclass
@@ -191,25 +190,6 @@ class PhantomFit:
     settings: dict = field(default_factory=dict)
 
 
-def _parity_allowed(axis: str, kind: str, n: int, m: int) -> bool:
-    """Whether a term respects the mirror symmetry of a standard gradient coil design.
-
-    A coil of standard design is symmetric under the three coordinate
-    mirrors: ``u_x`` is odd in x, even in y and z; ``u_y`` odd in y, even in x
-    and z; ``u_z`` odd in z, even in x and y (common practice, no source; the
-    Biot-Savart coils of the tests have it by construction). The parities of
-    the harmonics follow from their definition: under ``y -> -y`` cosines are
-    even and sines odd; under ``x -> -x`` (``phi -> pi - phi``) ``cos m phi``
-    takes ``(-1)^m`` and ``sin m phi`` ``-(-1)^m``; under ``z -> -z``,
-    :math:`P_n^m(\\cos\\theta)` takes :math:`(-1)^{n-m}`.
-    """
-    if axis == "x":
-        return kind == "cos" and m % 2 == 1 and (n - m) % 2 == 0
-    if axis == "y":
-        return kind == "sin" and m % 2 == 1 and (n - m) % 2 == 0
-    return kind == "cos" and m % 2 == 0 and (n - m) % 2 == 1
-
-
 def free_terms(degree: int, *, symmetry: str = "none") -> dict[str, list[tuple[str, int, int]]]:
     """The terms a phantom fit solves for, per axis: degree 2..N (see the module notes).
 
@@ -217,21 +197,16 @@ def free_terms(degree: int, *, symmetry: str = "none") -> dict[str, list[tuple[s
     ----------
     degree : int
         Highest degree, 2 to :data:`MAX_DEGREE`.
-    symmetry : {"none", "mirror"}
-        ``"mirror"`` keeps only the terms a mirror-symmetric design allows
-        (:func:`_parity_allowed`).
+    symmetry : {"none", "mirror", "axial"}
+        Keep only the terms a symmetric design allows
+        (:func:`nl_unwarp.fit.term_allowed`, which derives them from the
+        parities of the harmonics).
     """
     if not 2 <= degree <= MAX_DEGREE:
         raise ValueError(f"a phantom fit takes degree 2 to {MAX_DEGREE}, got {degree}")
     if symmetry not in SYMMETRIES:
         raise ValueError(f"symmetry must be one of {', '.join(SYMMETRIES)}, got {symmetry!r}")
-    out = {}
-    for axis in AXES:
-        terms = [t for t in fit_terms(degree) if t[1] >= 2]
-        if symmetry == "mirror":
-            terms = [t for t in terms if _parity_allowed(axis, *t)]
-        out[axis] = terms
-    return out
+    return {axis: [t for t in fit_terms(degree, axis=axis, symmetry=symmetry) if t[1] >= 2] for axis in AXES}
 
 
 def _table_and_gradient(points_device_mm: np.ndarray, terms: list[tuple[str, int, int]],
@@ -405,8 +380,8 @@ def fit_phantom(
     valid_radius_mm : float, optional
         Radius the model is trusted in (default: :func:`coverage_radius_mm`
         of the markers' device positions at the initial pose).
-    symmetry : {"none", "mirror"}
-        Restrict the terms to those of a mirror-symmetric design.
+    symmetry : {"none", "mirror", "axial"}
+        Restrict the terms to those of a symmetric design (:func:`free_terms`).
     fit_isocenter_offset : bool
         Also fit a correction common to all scans' isocenter offsets.
     loss, loss_scale_mm : str, float
@@ -430,8 +405,8 @@ def fit_phantom(
     scans = list(scans)
     if not scans:
         raise ValueError("no scans to fit")
-    if fit_isocenter_offset and symmetry != "mirror":
-        raise ValueError("the isocenter offset can be fitted only with the mirror symmetry imposed: "
+    if fit_isocenter_offset and symmetry == "none":
+        raise ValueError("the isocenter offset can be fitted only with a symmetry imposed: "
                          "without it a shifted expansion explains the scans as well (see "
                          "nl_unwarp.phantom_fit)")
     terms = free_terms(degree, symmetry=symmetry)
