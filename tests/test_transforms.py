@@ -134,13 +134,24 @@ def _sitk_linear(kind: str):
         tx = sitk.VersorRigid3DTransform((0.1, -0.2, 0.3, float(np.sqrt(1 - 0.14))), (3.0, -4.0, 5.0))
         tx.SetCenter((10.0, 20.0, -30.0))
         return tx
+    if kind == "scale":
+        tx = sitk.ScaleTransform(3, (1.1, 0.9, 1.2))
+        tx.SetCenter((10.0, 20.0, -30.0))
+        return tx
+    if kind in ("scale-versor", "scale-skew-versor"):
+        tx = sitk.ScaleVersor3DTransform() if kind == "scale-versor" else sitk.ScaleSkewVersor3DTransform()
+        skews = (0.05, -0.03, 0.02, 0.04, -0.01, 0.06) if kind == "scale-skew-versor" else ()
+        tx.SetParameters((0.1, -0.05, 0.2, 3.0, -4.0, 5.0, 1.1, 0.9, 1.2) + skews)
+        tx.SetCenter((10.0, 20.0, -30.0))
+        return tx
     tx = sitk.Similarity3DTransform()
     tx.SetParameters((0.1, -0.05, 0.2, 3.0, -4.0, 5.0, 1.1))
     tx.SetCenter((10.0, 20.0, -30.0))
     return tx
 
 
-LINEAR_KINDS = ["translation", "euler", "euler-zyx", "versor", "similarity"]
+LINEAR_KINDS = ["translation", "euler", "euler-zyx", "versor", "similarity", "scale", "scale-versor",
+                "scale-skew-versor"]
 
 
 @pytest.mark.parametrize("suffix", [".txt", ".mat"])
@@ -195,10 +206,10 @@ def test_ambiguous_and_unsupported_text_files_are_refused(tmp_path):
     (tmp_path / "list.txt").write_text(text)
     with pytest.raises(InputError, match="CompositeTransform header"):
         tio.load_chain(tmp_path / "list.txt")
-    scale = sitk.ScaleTransform(3, (1.1, 0.9, 1.2))
-    sitk.WriteTransform(scale, str(tmp_path / "scale.txt"))
+    planar = sitk.Euler2DTransform((1.0, 2.0), 0.3)  # a 2-D transform: not one of ours
+    sitk.WriteTransform(planar, str(tmp_path / "planar.txt"))
     with pytest.raises(InputError, match="not supported"):
-        tio.read_itk_affine(tmp_path / "scale.txt")
+        tio.read_itk_affine(tmp_path / "planar.txt")
     bad = text.split("#Transform 1")[0].replace("Parameters: 1 0 0 0 1 0 0 0 1 1 2 3",
                                                  "Parameters: 1 0 0")
     (tmp_path / "short.txt").write_text(bad)

@@ -16,8 +16,10 @@ Formats and their conventions:
   (checked against files SimpleITK writes, in the tests). Read too, through
   their parameters: ``TranslationTransform`` (t), ``Euler3DTransform`` (three
   angles, t; fixed: c and the ComputeZYX flag), ``VersorRigid3DTransform``
-  (versor, t) and ``Similarity3DTransform`` (versor, t, scale), and text files
-  holding a ``CompositeTransform`` of them (members in ITK order).
+  (versor, t), ``Similarity3DTransform`` (versor, t, scale), ``ScaleTransform``
+  (scales; fixed: c), ``ScaleVersor3DTransform`` and ``ScaleSkewVersor3DTransform``
+  (versor, t, scales, skews), and text files holding a ``CompositeTransform`` of
+  them (members in ITK order).
 * **ITK displacement field** in NIfTI: :mod:`nl_unwarp.io.itk` (re-exported).
 * **ITK composite** ``.h5`` (HDF5): ``/TransformGroup/0`` is the
   ``CompositeTransform_double_3_3``, members follow as ``/TransformGroup/1..``
@@ -139,7 +141,23 @@ def _euler_matrix(angles: np.ndarray, zyx: bool) -> np.ndarray:
 
 #: Linear 3-D ITK transforms read through their parameters: name -> number of parameters.
 _LINEAR_TYPES = {"AffineTransform": 12, "MatrixOffsetTransformBase": 12, "TranslationTransform": 3,
-                 "Euler3DTransform": 6, "VersorRigid3DTransform": 6, "Similarity3DTransform": 7}
+                 "Euler3DTransform": 6, "VersorRigid3DTransform": 6, "Similarity3DTransform": 7,
+                 "ScaleTransform": 3, "ScaleVersor3DTransform": 9, "ScaleSkewVersor3DTransform": 15}
+
+
+def _scale_skew_versor_matrix(params: np.ndarray, src: str) -> np.ndarray:
+    """Matrix of ITK's ScaleVersor3D (9 parameters) and ScaleSkewVersor3D (15) transforms.
+
+    Versor ``v``, translation, scales ``s`` (3), then skews ``k`` (6, ScaleSkew only). The
+    scales and skews are *added* to the rotation's entries, not multiplied:
+    ``M = R(v) + diag(s - 1) + K`` with ``K[0, 1], K[0, 2], K[1, 0], K[1, 2], K[2, 0], K[2, 1]
+    = k``. Found by experiment with SimpleITK 2.5 (its ``GetMatrix`` for single and combined
+    parameters), not from ITK's source; ``tests/test_transforms.py`` checks it against SimpleITK.
+    """
+    matrix = _versor_matrix(params[:3], src) + np.diag(params[6:9] - 1.0)
+    if params.size == 15:
+        matrix[[0, 0, 1, 1, 2, 2], [1, 2, 0, 2, 0, 1]] += params[9:15]
+    return matrix
 
 
 def _linear_type(kind: str) -> str | None:
@@ -153,13 +171,18 @@ def _linear_lps(kind: str, params: np.ndarray, fixed: np.ndarray, src: str) -> n
     base = _linear_type(kind)
     if base is None:
         raise InputError(src, f"transform type {kind!r} is not supported (3-D affine, translation, "
-                              "Euler, versor-rigid or similarity, or a displacement field)")
+                              "Euler, versor-rigid, similarity, scale, scale-versor, scale-skew-versor, "
+                              "or a displacement field)")
     if params.size != _LINEAR_TYPES[base]:
         raise InputError(src, f"{kind} parameters: expected {_LINEAR_TYPES[base]} values, got {params.size}")
     if base in ("AffineTransform", "MatrixOffsetTransformBase"):
         return _itk_params_to_lps(params, fixed, src)
     if base == "TranslationTransform":
         return _centred(np.eye(3), params, np.zeros(0))
+    if base == "ScaleTransform":
+        return _centred(np.diag(params), np.zeros(3), fixed)
+    if base in ("ScaleVersor3DTransform", "ScaleSkewVersor3DTransform"):
+        return _centred(_scale_skew_versor_matrix(params, src), params[3:6], fixed)
     if base == "Euler3DTransform":
         zyx = fixed.size >= 4 and bool(fixed[3])
         return _centred(_euler_matrix(params[:3], zyx), params[3:6], fixed)
