@@ -116,3 +116,27 @@ def test_login_name_already_set_is_kept(monkeypatch):
     monkeypatch.setenv("LOGNAME", "nlu-operator")
     app._set_login_name()
     assert os.environ["LOGNAME"] == "nlu-operator"
+
+
+# How often nipype's scheduler looks for finished nodes (no cluster required).
+
+def _nipype_default(option: str) -> float:
+    """nipype's shipped default of an ``[execution]`` option (nipype.utils.config's template)."""
+    from configparser import ConfigParser
+
+    from nipype.utils.config import DEFAULT_CONFIG_TPL
+
+    parser = ConfigParser(interpolation=None)
+    parser.read_string(DEFAULT_CONFIG_TPL)
+    return parser.getfloat("execution", option)
+
+
+def test_local_plugins_poll_quickly_batch_plugins_keep_nipype_default(tmp_path):
+    nipype_poll_s = _nipype_default("poll_sleep_duration")
+    for plugin in ("MultiProc", "Linear"):
+        settings = app._execution_config(plugin, tmp_path / "crash")
+        assert settings["poll_sleep_duration"] == app.LOCAL_POLL_S < nipype_poll_s
+        assert settings["crashdump_dir"] == str(tmp_path / "crash")
+    # Each round of a batch plugin runs squeue (qstat, ...) per job: nipype's pace is kept.
+    for plugin in ("SLURM", "SGE", "PBS"):
+        assert "poll_sleep_duration" not in app._execution_config(plugin, tmp_path / "crash")

@@ -95,6 +95,24 @@ def _plugin_args(options: RunOptions, total_nodes: int = 0) -> dict:
     return args
 
 
+#: Seconds nipype's scheduler sleeps between rounds with the local plugins. nipype's default
+#: (2 s, ``poll_sleep_duration``) is paid once per node on a branch's chain of dependent
+#: nodes, which made MultiProc slower than Linear on a few subjects (benchmarks/bench_load.py);
+#: MultiProc's results arrive in-process, so a short sleep costs little. Batch plugins keep
+#: nipype's default: each round there asks the scheduler (squeue, qstat) about every job.
+LOCAL_POLL_S = 0.1
+LOCAL_PLUGINS = ("MultiProc", "Linear", "LegacyMultiProc")
+
+
+def _execution_config(plugin: str, crash_dir: Path) -> dict:
+    """The workflow's nipype ``execution`` settings for this run."""
+    settings = {"crashdump_dir": str(crash_dir), "hash_method": "content", "crashfile_format": "txt",
+                "stop_on_first_crash": False}
+    if plugin in LOCAL_PLUGINS:
+        settings["poll_sleep_duration"] = LOCAL_POLL_S
+    return settings
+
+
 def _set_threads(n: int | None) -> None:
     if n:
         for var in ("NUMBA_NUM_THREADS", "OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
@@ -192,8 +210,7 @@ def run(options: RunOptions, *, plan: Plan | None = None) -> tuple[list[dict], l
     from nipype import logging as nipype_logging
 
     nipype_logging.update_logging(nipype_config)
-    workflow.config["execution"].update({"crashdump_dir": str(crash_dir), "hash_method": "content",
-                                         "crashfile_format": "txt", "stop_on_first_crash": False})
+    workflow.config["execution"].update(_execution_config(options.plugin, crash_dir))
     failures = []
     if workflow.list_node_names():
         before = set(crash_dir.glob("crash-*")) if crash_dir.exists() else set()
