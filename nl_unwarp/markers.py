@@ -25,8 +25,10 @@ the centre (mean value property; Evans, *Partial Differential Equations*,
 
 Matching assigns detections to the markers of a definition, given an initial
 pose: iterated mutual nearest neighbours within a gate, each round followed by
-a robust rigid fit (weighted Kabsch/Umeyama with Tukey biweights). Missing
-markers and spurious detections are simply left unmatched.
+a robust rigid fit (weighted Kabsch/Umeyama with Tukey biweights) and the
+removal of pairs left far apart by it. Missing markers and spurious detections
+are simply left unmatched; a spurious blob that sits where a marker is missing
+is matched, and the robust loss of the fit then down-weights it.
 
 This module is pure math: arrays and affines in, arrays out.
 
@@ -82,6 +84,9 @@ TUKEY_C = 4.685
 #: smallest marker spacing: beyond half of it a detection could be nearer to
 #: another marker.
 GATE_FRACTION = 0.4
+#: After the rigid fit of a round, pairs farther apart than this fraction of the gate
+#: are dropped (wrong pairs; the distortion left by a rigid fit stays well inside).
+KEEP_FRACTION = 0.5
 
 
 @dataclass(frozen=True)
@@ -462,8 +467,11 @@ def match_markers(
         if len(new_mk) < 4:
             raise ValueError(f"only {len(new_mk)} markers lie within {gate:.3g} mm of a detection at "
                              "the initial pose; give a closer initial pose")
-        pose, w = robust_rigid_fit(ref[new_mk], det[new_di])
-        keep = w > 0
+        pose, _ = robust_rigid_fit(ref[new_mk], det[new_di])
+        # The biweights give the pose; pairs are kept out to half the gate, because the
+        # distortion makes residuals systematic, not noise-like (a marker off the rigid
+        # fit by a millimetre is still the right one).
+        keep = np.linalg.norm(pose.apply(ref[new_mk]) - det[new_di], axis=1) <= KEEP_FRACTION * gate
         new_mk, new_di = new_mk[keep], new_di[keep]
         if np.array_equal(new_mk, mk) and np.array_equal(new_di, di):
             break
@@ -502,6 +510,8 @@ def match_any_orientation(
     """
     ref = np.asarray(definition_mm, float)
     det = np.asarray(detections_ras_mm, float)
+    if len(det) < 4:
+        raise ValueError(f"only {len(det)} markers detected; at least 4 are needed to match")
     base = np.eye(3) if base_rotation is None else np.asarray(base_rotation, float)
     best, best_key = None, None
     for rot in proper_rotations_24():

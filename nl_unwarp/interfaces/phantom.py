@@ -122,13 +122,18 @@ def fit_phantom_files(
     from ..io.nifti import load_image
     from ..io.phantomdef import load_phantom_definition, write_marker_table
     from ..markers import detect_markers, match_any_orientation
-    from ..phantom_fit import DEFAULT_LOSS, DEFAULT_LOSS_SCALE_MM, PhantomScan, fit_phantom
+    from ..phantom_fit import DEFAULT_LOSS, DEFAULT_LOSS_SCALE_MM, MAX_DEGREE, PhantomScan, fit_phantom
     from ..report.pages import coil_page_name, render_coil_page
     from ..report.phantompage import render_phantom_page
 
     say = step or (lambda message: None)
     if not images:
         raise InputError("images", "give at least one phantom scan")
+    if not 2 <= int(degree) <= MAX_DEGREE:
+        raise InputError("--degree", f"a phantom fit takes degree 2 to {MAX_DEGREE}, got {degree}")
+    if fit_isocenter_offset and symmetry == "none":
+        raise InputError("--fit-isocenter-offset", "needs --symmetry mirror or axial: without a symmetry "
+                                                   "the isocenter offset is not determined by the scans")
     definition = load_phantom_definition(phantom)
     frames = [make_frame(spec)[0] for spec in _scan_frames(images, position, table_positions,
                                                            isocenter_offsets)]
@@ -143,8 +148,7 @@ def fit_phantom_files(
             match = match_any_orientation(definition.markers_mm, found.centroids_ras_mm,
                                           base_rotation=phantom_rotation)
         except ValueError as exc:
-            raise InputError(str(path), f"markers: {exc} ({len(found.centroids_ras_mm)} blobs detected)") \
-                from None
+            raise InputError(str(path), f"markers: {exc}") from None
         label_s = Path(path).name
         scans.append(PhantomScan(definition.markers_mm[match.marker_index],
                                  found.centroids_ras_mm[match.detection_index], frame,
