@@ -475,46 +475,36 @@ def fold_chain_and_sample(coef, order, fill, target_map, raw_map, program, affin
 
 
 @numba.njit(inline="always", cache=True)
+def _blend(v, o, di, dj, dk, ti, tj, tk):
+    """Trilinear blend of a flat buffer over the corners ``o + {0, di} + {0, dj} + {0, dk}``."""
+    a00 = v[o] + ti * (v[o + di] - v[o])
+    a10 = v[o + dj] + ti * (v[o + dj + di] - v[o + dj])
+    a01 = v[o + dk] + ti * (v[o + dk + di] - v[o + dk])
+    a11 = v[o + dk + dj] + ti * (v[o + dk + dj + di] - v[o + dk + dj])
+    b0 = a00 + tj * (a10 - a00)
+    b1 = a01 + tj * (a11 - a01)
+    return b0 + tk * (b1 - b0)
+
+
+@numba.njit(inline="always", cache=True)
 def _cell(nx, ny, nz, gi, gj, gk):
-    """Corner indices (clamped to the grid) and fractions of a continuous index ``>= -1``."""
+    """Flat offset of a cell's first corner, the steps to the others (zero where a corner is
+    clamped to the grid's edge, as :func:`_clamp` does) and the fractions, for a continuous
+    index ``>= -1``."""
     bi, ti = _floor(gi)
     bj, tj = _floor(gj)
     bk, tk = _floor(gk)
+    plane = nx * ny
     if 0 <= bi < nx - 1 and 0 <= bj < ny - 1 and 0 <= bk < nz - 1:
-        i0, i1, j0, j1, k0, k1 = bi, bi + 1, bj, bj + 1, bk, bk + 1
-    else:
-        i0, i1, j0, j1 = _clamp(bi, nx), _clamp(bi + 1, nx), _clamp(bj, ny), _clamp(bj + 1, ny)
-        k0, k1 = _clamp(bk, nz), _clamp(bk + 1, nz)
-    return i0, i1, j0, j1, k0, k1, ti, tj, tk
-
-
-@numba.njit(inline="always", cache=True)
-def _corners(a, i0, i1, j0, j1, k0, k1, ti, tj, tk):
-    """Trilinear blend of a 3-D array ``a`` over the eight corners."""
-    a00 = a[i0, j0, k0] + ti * (a[i1, j0, k0] - a[i0, j0, k0])
-    a10 = a[i0, j1, k0] + ti * (a[i1, j1, k0] - a[i0, j1, k0])
-    a01 = a[i0, j0, k1] + ti * (a[i1, j0, k1] - a[i0, j0, k1])
-    a11 = a[i0, j1, k1] + ti * (a[i1, j1, k1] - a[i0, j1, k1])
-    b0 = a00 + tj * (a10 - a00)
-    b1 = a01 + tj * (a11 - a01)
-    return b0 + tk * (b1 - b0)
-
-
-@numba.njit(inline="always", cache=True)
-def _corners_c(a, c, i0, i1, j0, j1, k0, k1, ti, tj, tk):
-    """:func:`_corners` of component ``c`` of a 4-D array (indexed in place, no view)."""
-    a00 = a[i0, j0, k0, c] + ti * (a[i1, j0, k0, c] - a[i0, j0, k0, c])
-    a10 = a[i0, j1, k0, c] + ti * (a[i1, j1, k0, c] - a[i0, j1, k0, c])
-    a01 = a[i0, j0, k1, c] + ti * (a[i1, j0, k1, c] - a[i0, j0, k1, c])
-    a11 = a[i0, j1, k1, c] + ti * (a[i1, j1, k1, c] - a[i0, j1, k1, c])
-    b0 = a00 + tj * (a10 - a00)
-    b1 = a01 + tj * (a11 - a01)
-    return b0 + tk * (b1 - b0)
+        return bi + nx * bj + plane * bk, 1, nx, plane, ti, tj, tk
+    i0, j0, k0 = _clamp(bi, nx), _clamp(bj, ny), _clamp(bk, nz)
+    di, dj, dk = _clamp(bi + 1, nx) - i0, (_clamp(bj + 1, ny) - j0) * nx, (_clamp(bk + 1, nz) - k0) * plane
+    return i0 + nx * j0 + plane * k0, di, dj, dk, ti, tj, tk
 
 
 @numba.njit(parallel=True, cache=True)
 def field_affine_field_sample(coef, order, fill, target_map, first, first_offset, use_first, matrix,
-                              last, last_jac, last_map, use_last, use_jac, raw_map, out, missed):
+                              last, last_dims, last_jac, last_map, use_last, use_jac, raw_map, out, missed):
     """:func:`fold_chain_and_sample` for the chain shape ``[W, A, G (x J)]``, unrolled.
 
     ``W`` (optional) is a field on the target lattice, read at its nodes
@@ -524,8 +514,9 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
     a flagged miss outside ``[-0.5, n - 0.5]``), with its own-grid factor map
     ``last_jac`` sharing its weights (held at edge values outside). The
     arithmetic is that of the generic kernel, step for step; the chain's
-    parameters are plain arguments rather than rows of a program, which the
-    compiler can keep in registers (``benchmarks/bench_compose.py``).
+    parameters are plain arguments rather than rows of a program, and ``G``
+    is read from flat buffers through one offset per cell
+    (``benchmarks/bench_compose.py``).
 
     Parameters
     ----------
@@ -535,10 +526,12 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
         ``W``'s voxel index of target voxel (0, 0, 0).
     matrix : (3, 4) float64 ndarray
         ``A``, RAS mm.
-    last : (X', Y', Z', 3) float32 ndarray
-        ``G``'s displacement, RAS mm (read if ``use_last``).
-    last_jac : (X', Y', Z') float32 ndarray
-        ``G``'s factor map (read if ``use_jac``).
+    last : (3 X' Y' Z',) float32 ndarray
+        ``G``'s displacement, RAS mm, flat: x fastest, components slowest (read if ``use_last``).
+    last_dims : (3,) int64 ndarray
+        ``G``'s grid shape.
+    last_jac : (X' Y' Z',) float32 ndarray
+        ``G``'s factor map, flat, x fastest (read if ``use_jac``).
     last_map : (3, 4) float64 ndarray
         World RAS mm -> ``G``'s voxel index.
 
@@ -546,7 +539,8 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
     """
     nx, ny, nz = out.shape
     fx, fy, fz = first.shape[0], first.shape[1], first.shape[2]
-    gx, gy, gz = last.shape[0], last.shape[1], last.shape[2]
+    gx, gy, gz = last_dims[0], last_dims[1], last_dims[2]
+    vol = gx * gy * gz
     rx, ry, rz = coef.shape
     tj, tk = (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
     for tile in numba.prange(tj * tk):
@@ -572,18 +566,18 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
                 if use_last:
                     gi, gj, gk = _point(last_map, x, y, z)
                     if -0.5 <= gi <= gx - 0.5 and -0.5 <= gj <= gy - 0.5 and -0.5 <= gk <= gz - 0.5:
-                        i0, i1, j0, j1, k0, k1, ti, tj_, tk_ = _cell(gx, gy, gz, gi, gj, gk)
-                        dx = _corners_c(last, 0, i0, i1, j0, j1, k0, k1, ti, tj_, tk_)
-                        dy = _corners_c(last, 1, i0, i1, j0, j1, k0, k1, ti, tj_, tk_)
-                        dz = _corners_c(last, 2, i0, i1, j0, j1, k0, k1, ti, tj_, tk_)
+                        o, di, dj, dk, ti, tj_, tk_ = _cell(gx, gy, gz, gi, gj, gk)
+                        dx = _blend(last, o, di, dj, dk, ti, tj_, tk_)
+                        dy = _blend(last, o + vol, di, dj, dk, ti, tj_, tk_)
+                        dz = _blend(last, o + 2 * vol, di, dj, dk, ti, tj_, tk_)
                         if use_jac:
-                            f = _corners(last_jac, i0, i1, j0, j1, k0, k1, ti, tj_, tk_)
+                            f = _blend(last_jac, o, di, dj, dk, ti, tj_, tk_)
                         x += dx
                         y += dy
                         z += dz
                     else:
                         if use_jac:
-                            f = _held(last_jac, gx, gy, gz, gi, gj, gk)
+                            f = _factor_at(last_jac, gx, gy, gz, gi, gj, gk)
                         miss = True
                 ri, rj, rk = _point(raw_map, x, y, z)
                 if _inside(ri, rx) and _inside(rj, ry) and _inside(rk, rz):
@@ -592,15 +586,3 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
                 else:
                     out[i, j, k] = fill
                     missed[i, j, k] = False
-
-
-@numba.njit(inline="always", cache=True)
-def _held(a, nx, ny, nz, gi, gj, gk):
-    """:func:`_factor_at` on a 3-D array: trilinear, held at its edge values beyond the grid."""
-    if gi != gi or gj != gj or gk != gk:  # NaN point: no factor
-        return 1.0
-    bi, ti = _floor(min(max(gi, -1.0), float(nx)))
-    bj, tj = _floor(min(max(gj, -1.0), float(ny)))
-    bk, tk = _floor(min(max(gk, -1.0), float(nz)))
-    return _corners(a, _clamp(bi, nx), _clamp(bi + 1, nx), _clamp(bj, ny), _clamp(bj + 1, ny),
-                    _clamp(bk, nz), _clamp(bk + 1, nz), ti, tj, tk)

@@ -434,8 +434,10 @@ def _unrolled_arguments(steps: Sequence[Step], target_shape, target_affine: np.n
             jac = g.jacobian
     if rest:
         return None
-    return (first, offset, first is not _NO_FIELD, np.ascontiguousarray(matrix[:3]), last, jac, last_map,
-            last is not _NO_FIELD, jac is not _NO_FACTOR)
+    # Flat views (no copies: the arrays are x fastest) that the kernel reads through cell offsets.
+    return (first, offset, first is not _NO_FIELD, np.ascontiguousarray(matrix[:3]),
+            last.reshape(-1, order="F"), np.array(last.shape[:3], np.int64), jac.reshape(-1, order="F"),
+            last_map, last is not _NO_FIELD, jac is not _NO_FACTOR)
 
 
 def _check_on_outside(on_outside: str) -> None:
