@@ -33,6 +33,22 @@ log = logging.getLogger("nl_unwarp")
 REPORT_PAGE = "phantom_fit.html"
 
 
+def _blas_single_thread():
+    """One BLAS thread for the fit's small dense solves, when threadpoolctl is installed.
+
+    The fit's matrices are ~1500 x 200: one thread is as fast as two on an idle
+    machine, and on a loaded one threaded BLAS was measured 10-200 times slower
+    (``benchmarks/bench_phantom_fit.py``).
+    """
+    import contextlib
+
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - optional
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=1, user_api="blas")
+
+
 def _scan_frames(images: Sequence, position: str, table_positions, isocenter_offsets):
     """One FrameSpec per scan: per-scan table positions / offsets, or one for all."""
     from ..api import FrameSpec
@@ -161,10 +177,11 @@ def fit_phantom_files(
     say(f"fitting pose and coil terms to degree {degree} ({sum(len(s.marker_index) for s in scans)} "
         f"markers, {len(scans)} scan(s))")
     try:
-        fit = fit_phantom(scans, degree=degree, symmetry=symmetry, fit_isocenter_offset=fit_isocenter_offset,
-                          loss=loss or DEFAULT_LOSS,
-                          loss_scale_mm=DEFAULT_LOSS_SCALE_MM if loss_scale_mm is None else loss_scale_mm,
-                          label=label or f"phantom fit ({definition.name})")
+        with _blas_single_thread():
+            fit = fit_phantom(scans, degree=degree, symmetry=symmetry,
+                              fit_isocenter_offset=fit_isocenter_offset, loss=loss or DEFAULT_LOSS,
+                              loss_scale_mm=DEFAULT_LOSS_SCALE_MM if loss_scale_mm is None else loss_scale_mm,
+                              label=label or f"phantom fit ({definition.name})")
     except ValueError as exc:
         raise InputError(str(phantom), f"fit: {exc}") from None
     markers = sum(len(s.marker_index) for s in scans)
