@@ -32,7 +32,7 @@ import numpy as np
 from scipy.linalg import qr, solve_triangular
 
 from .coil import AXES, AxisExpansion, CoilModel
-from .harmonics import expansion, harmonic_table
+from .harmonics import expansion, iter_harmonics
 
 __all__ = [
     "DEFAULT_MAX_DEGREE",
@@ -343,15 +343,25 @@ def fit_terms(degree: int, orders: Iterable[int] | None = None, *, axis: str | N
     return terms
 
 
-def _columns(table_c: np.ndarray, table_s: np.ndarray, terms, reference_radius_mm: float) -> np.ndarray:
-    """Design columns from a harmonic table (fancy indexing: one copy)."""
-    kinds = np.array([k == "cos" for k, _, _ in terms], dtype=bool)
-    n_idx = np.array([n for _, n, _ in terms], dtype=int)
-    m_idx = np.array([m for _, _, m in terms], dtype=int)
-    design = np.empty((table_c.shape[0], len(terms)))
-    design[:, kinds] = table_c[:, n_idx[kinds], m_idx[kinds]]
-    design[:, ~kinds] = table_s[:, n_idx[~kinds], m_idx[~kinds]]
-    design *= reference_radius_mm
+def _design(points_device_mm: np.ndarray, terms, reference_radius_mm: float, *, spare: int = 0
+            ) -> np.ndarray:
+    """Design columns straight from the recurrences, column-major (what LAPACK's QR works on).
+
+    ``spare`` more columns are left uninitialised at the end (for right-hand sides).
+    """
+    index = {t: i for i, t in enumerate(terms)}
+    orders: dict[int, int] = {}
+    for _, n, m in terms:
+        orders[m] = max(orders.get(m, 0), n)
+    design = np.empty((points_device_mm.shape[0], len(terms) + spare), order="F")
+    if not terms:
+        return design
+    scaled = points_device_mm / reference_radius_mm
+    for n, m, c, s, _, _ in iter_harmonics(scaled, max(orders.values()), orders=orders):
+        for kind, values in (("cos", c), ("sin", s)):
+            i = index.get((kind, n, m))
+            if i is not None:
+                np.multiply(values, reference_radius_mm, out=design[:, i])
     return design
 
 
@@ -375,9 +385,7 @@ def design_matrix(points_device_mm: np.ndarray, terms: list[tuple[str, int, int]
         the encoded position in mm.
     """
     pts = np.asarray(points_device_mm, dtype=float).reshape(-1, 3)
-    degree = max((n for _, n, _ in terms), default=0)
-    table_c, table_s = harmonic_table(pts / reference_radius_mm, degree)
-    return _columns(table_c, table_s, terms, reference_radius_mm)
+    return _design(pts, list(terms), float(reference_radius_mm))
 
 
 # --- sampling geometry -----------------------------------------------------------------------
@@ -425,7 +433,10 @@ def valid_radius_from_samples(points_device_mm: np.ndarray, *, bins: int | None 
     dirs = _fibonacci_directions(bins)
     nearest = np.argmax((pts[off_centre] / radius[off_centre, None]) @ dirs.T, axis=1)
     reach = np.zeros(bins)
-    np.maximum.at(reach, nearest, radius[off_centre])
+    # Largest radius per bin: sort by (bin, radius) and keep the last of each bin.
+    order = np.lexsort((radius[off_centre], nearest))
+    last = np.r_[np.nonzero(np.diff(nearest[order]))[0], order.size - 1]
+    reach[nearest[order][last]] = radius[off_centre][order][last]
     filled = reach > 0
     return float(reach[filled].min()), float(1.0 - filled.mean())
 
@@ -433,33 +444,73 @@ def valid_radius_from_samples(points_device_mm: np.ndarray, *, bins: int | None 
 # --- the nested solve ------------------------------------------------------------------------
 
 
+class _Factors:
+    """Householder QR of a degree-ordered, column-normalised design with its right-hand sides.
+
+    The Householder QR of ``[A | B]`` gives ``R`` and ``Q^T B`` (the top-right block) without
+    forming ``Q``, which costs as much again. The leading columns of ``Q`` that the
+    leave-one-out leverages and the fitted values need are ``A R^{-1}`` (one triangular
+    solve), formed only as far as asked and only once.
+    """
+
+    def __init__(self, point_set: _PointSet, terms: list, values: np.ndarray) -> None:
+        self.point_set, self.terms = point_set, terms
+        k = len(terms)
+        augmented = point_set.columns(terms, spare=values.shape[1])
+        # Column by column (the design is column-major): contiguous reductions, in place.
+        self.norms = np.sqrt(np.array([column @ column for column in augmented.T[:k]]))
+        for column, norm in zip(augmented.T[:k], self.norms, strict=True):
+            if norm > 0:
+                column /= norm
+        augmented[:, k:] = values
+        # mode "raw": R from the leading rows only (mode "r" forms triu of the whole N x k array).
+        _, r_aug = qr(augmented, mode="raw", overwrite_a=True, check_finite=False)
+        self.r = np.array(r_aug[:k, :k])
+        self.qtb = np.array(r_aug[:k, k:])
+        self._basis = np.empty((values.shape[0], 0))
+
+    def basis(self, k: int) -> np.ndarray:
+        """The first ``k`` columns of ``Q`` (N, k), from ``A R^{-1}``."""
+        if self._basis.shape[1] < k:
+            design = self.point_set.columns(self.terms[:k])
+            design /= np.where(self.norms[:k] > 0, self.norms[:k], 1.0)
+            # Q^T = R^{-T} A^T: one triangular solve on the transposed design.
+            self._basis = solve_triangular(self.r[:k, :k], design.T, trans="T", check_finite=False).T
+        return self._basis[:, :k]
+
+
 @dataclass
 class _NestedFit:
-    """One QR of a degree-ordered, column-normalised design and what follows from it."""
+    """One axis's view of shared factors: its right-hand side and what follows from it."""
 
-    terms: list
-    norms: np.ndarray
-    q: np.ndarray
-    r: np.ndarray
-    qtb: np.ndarray
+    factors: _Factors
+    column: int
     values: np.ndarray
 
-    def count(self, degree: int) -> int:
-        """Number of leading terms of degree <= ``degree``."""
-        return sum(1 for _, n, _ in self.terms if n <= degree)
+    @property
+    def terms(self) -> list:
+        return self.factors.terms
+
+    @property
+    def norms(self) -> np.ndarray:
+        return self.factors.norms
+
+    @property
+    def r(self) -> np.ndarray:
+        return self.factors.r
+
+    @property
+    def qtb(self) -> np.ndarray:
+        return self.factors.qtb[:, self.column]
+
+    def basis(self, k: int) -> np.ndarray:
+        return self.factors.basis(k)
 
     def singular_values(self, k: int) -> np.ndarray:
         return np.linalg.svd(self.r[:k, :k], compute_uv=False)
 
     def coefficients(self, k: int) -> np.ndarray:
         return solve_triangular(self.r[:k, :k], self.qtb[:k], check_finite=False) / self.norms[:k]
-
-
-def _nested_fit(design: np.ndarray, values: np.ndarray, terms: list) -> _NestedFit:
-    norms = np.linalg.norm(design, axis=0)
-    design /= np.where(norms > 0, norms, 1.0)
-    q, r = qr(design, mode="economic", overwrite_a=True, check_finite=False)
-    return _NestedFit(terms, norms, q, r, q.T @ values, values)
 
 
 def _expansion(terms, coef, degree: int, r0: float, valid: float) -> AxisExpansion:
@@ -491,9 +542,10 @@ def _loo_scores(nested: _NestedFit, counts: list[int]) -> list[tuple[float, floa
     """Leave-one-out mean square residual and its standard error for each leading count."""
     fitted = np.zeros_like(nested.values)
     leverage = np.zeros_like(nested.values)
+    basis = nested.basis(max(counts))
     done, out = 0, []
     for k in counts:
-        block = nested.q[:, done:k]
+        block = basis[:, done:k]
         fitted += block @ nested.qtb[done:k]
         leverage += np.einsum("ij,ij->i", block, block)
         done = k
@@ -507,10 +559,19 @@ def _loo_scores(nested: _NestedFit, counts: list[int]) -> list[tuple[float, floa
     return out
 
 
-def _fit_one(axis: str | None, points: np.ndarray, values: np.ndarray, tables, *, degree: int | None,
-             max_degree: int, symmetry: str, orders, r0: float, valid: float) -> _AxisResult:
-    """Fit one axis: a given degree, or the cross-validated one up to ``max_degree``."""
-    samples = points.shape[0]
+@dataclass
+class _Plan:
+    """The terms an axis fit factorises, and the degrees it may choose from."""
+
+    terms: list
+    counts: dict
+    wanted: list
+    qr_degree: int
+
+
+def _axis_plan(axis: str | None, samples: int, *, degree: int | None, max_degree: int, symmetry: str,
+               orders) -> _Plan:
+    """Terms up to the comparison degree (as many as the samples carry) and the candidate degrees."""
     top = (degree if degree is not None else max_degree) + COMPARISON_STEP
     all_terms = fit_terms(top, orders, axis=axis, symmetry=symmetry)
     counts = {d: sum(1 for _, n, _ in all_terms if n <= d) for d in range(top + 1)}
@@ -519,11 +580,16 @@ def _fit_one(axis: str | None, points: np.ndarray, values: np.ndarray, tables, *
     if degree is not None and samples < counts[degree]:
         raise ValueError(f"{samples} samples cannot determine {counts[degree]} terms of degree "
                          f"{degree}: add samples or lower the degree")
-    # Factorise only as many columns as the samples can carry.
     qr_degree = max(d for d in range(top + 1) if counts[d] <= samples) if counts[0] <= samples else 0
-    terms = all_terms[: counts[qr_degree]]
-    design = _columns(*tables(qr_degree), terms, r0)
-    nested = _nested_fit(design, values, terms)
+    return _Plan(all_terms[: counts[qr_degree]], counts, wanted, qr_degree)
+
+
+def _fit_one(axis: str | None, point_set: _PointSet, plan: _Plan, values: np.ndarray, *,
+             degree: int | None, max_degree: int, r0: float, valid: float) -> _AxisResult:
+    """Fit one axis: a given degree, or the cross-validated one up to ``max_degree``."""
+    samples = point_set.points.shape[0]
+    terms, counts, wanted, qr_degree = plan.terms, plan.counts, plan.wanted, plan.qr_degree
+    nested = point_set.factorised(terms, axis, values)
     requested = counts[degree] if degree is not None else None
     if requested is not None:
         if np.any(nested.norms[:requested] == 0):
@@ -549,7 +615,7 @@ def _fit_one(axis: str | None, points: np.ndarray, values: np.ndarray, tables, *
         chosen = degree
     k = counts[chosen]
     coef = nested.coefficients(k)
-    residual = nested.q[:, :k] @ nested.qtb[:k] - values
+    residual = nested.basis(k) @ nested.qtb[:k] - values
     comparison_degree = next((d for d in range(chosen + COMPARISON_STEP, chosen, -1)
                               if d <= qr_degree and counts[d] > k
                               and _determinable(nested, counts[d], samples)[0]), None)
@@ -559,7 +625,7 @@ def _fit_one(axis: str | None, points: np.ndarray, values: np.ndarray, tables, *
         comparison = _expansion(terms[:kc], nested.coefficients(kc), comparison_degree, r0, valid)
     sing = nested.singular_values(k)
     loo = dict(zip(candidates, scores, strict=True))
-    sampled, empty = valid_radius_from_samples(points)
+    sampled, empty = point_set.coverage
     report = AxisFit(
         residual_rms_mm=float(np.sqrt(np.mean(residual**2))),
         residual_max_mm=float(np.max(np.abs(residual))),
@@ -661,18 +727,44 @@ def _error_summary(results: Mapping[str, _AxisResult], valid_mm: float):
 # --- public entry points ---------------------------------------------------------------------
 
 
-def _table_cache(points: np.ndarray, r0: float):
-    """Harmonic tables of one point set, computed once at the highest degree asked for."""
-    cache: dict = {}
+class _PointSet:
+    """One set of sample positions, its coverage and QR factorisations, shared by the axes.
 
-    def tables(degree: int):
-        if "table" not in cache or cache["degree"] < degree:
-            cache["table"] = harmonic_table(points / r0, degree)
-            cache["degree"] = degree
-        table_c, table_s = cache["table"]
-        return table_c[:, : degree + 1, : degree + 1], table_s[:, : degree + 1, : degree + 1]
+    Axes sampled at the same positions with the same terms (no symmetry) share one
+    factorisation: one QR, a right-hand side per axis.
+    """
 
-    return tables
+    def __init__(self, points: np.ndarray, r0: float) -> None:
+        self.points, self.r0 = points, r0
+        self._factors: dict = {}
+        self._pending: dict = {}
+        self._coverage: tuple[float, float] | None = None
+
+    @property
+    def coverage(self) -> tuple[float, float]:
+        """:func:`valid_radius_from_samples` of the positions (computed once)."""
+        if self._coverage is None:
+            self._coverage = valid_radius_from_samples(self.points)
+        return self._coverage
+
+    def columns(self, terms: list, *, spare: int = 0) -> np.ndarray:
+        """A fresh column-major design for ``terms`` (the QR overwrites it; building it from the
+        recurrences is cheaper than copying columns out of a stored one)."""
+        return _design(self.points, terms, self.r0, spare=spare)
+
+    def register(self, terms: list, axis: str | None, values: np.ndarray) -> None:
+        """Announce an axis's right-hand side, so that axes with the same terms share one QR."""
+        self._pending.setdefault(tuple(terms), []).append((axis, values))
+
+    def factorised(self, terms: list, axis: str | None, values: np.ndarray) -> _NestedFit:
+        """The factors of ``terms`` (with every registered right-hand side), for ``axis``."""
+        key = tuple(terms)
+        if key not in self._factors:
+            pending = self._pending.pop(key, None) or [(axis, values)]
+            columns = np.stack([v for _, v in pending], axis=1)
+            self._factors[key] = (_Factors(self, list(terms), columns), [a for a, _ in pending])
+        factors, axes = self._factors[key]
+        return _NestedFit(factors, axes.index(axis), values)
 
 
 def _check_samples(name, points, values) -> tuple[np.ndarray, np.ndarray]:
@@ -748,9 +840,10 @@ def fit_axis(
     by a QR factorisation (see the module notes).
     """
     pts, values = _check_samples(axis, points_device_mm, encoded_mm)
-    result = _fit_one(axis, pts, values, _table_cache(pts, reference_radius_mm), degree=int(degree),
-                      max_degree=int(degree), symmetry=symmetry, orders=orders,
-                      r0=float(reference_radius_mm), valid=float(valid_radius_mm))
+    plan = _axis_plan(axis, pts.shape[0], degree=int(degree), max_degree=int(degree), symmetry=symmetry,
+                      orders=orders)
+    result = _fit_one(axis, _PointSet(pts, float(reference_radius_mm)), plan, values, degree=int(degree),
+                      max_degree=int(degree), r0=float(reference_radius_mm), valid=float(valid_radius_mm))
     return result.expansion, result.report
 
 
@@ -831,25 +924,30 @@ def fit_samples(
     if symmetry not in SYMMETRIES:
         raise ValueError(f"unknown symmetry {symmetry!r}; expected one of {', '.join(SYMMETRIES)}")
     checked = {a: _check_samples(a, *samples_by_axis[a]) for a in AXES}
-    sampled = min(valid_radius_from_samples(checked[a][0])[0] for a in AXES)
+    point_sets: dict[str, _PointSet] = {}
+    for name in AXES:
+        pts = checked[name][0]
+        point_sets[name] = next((ps for ps in point_sets.values() if ps.points is pts or (
+            ps.points.shape == pts.shape and np.array_equal(ps.points, pts))), None) or _PointSet(pts, 1.0)
+    sampled = min(point_sets[a].coverage[0] for a in AXES)
     if not sampled > 0:
         raise ValueError("all samples are at the isocenter: spread them over a sphere")
     valid = float(valid_radius_mm) if valid_radius_mm is not None else sampled
     r0 = float(reference_radius_mm) if reference_radius_mm is not None else float(math.ceil(sampled))
-    caches: list = []
+    for ps in point_sets.values():
+        ps.r0 = r0
     results: dict[str, _AxisResult] = {}
-    for name in AXES:
-        pts, vals = checked[name]
-        tables = next((t for p, t in caches if p is pts or (p.shape == pts.shape and np.array_equal(p, pts))),
-                      None)
-        if tables is None:
-            tables = _table_cache(pts, r0)
-            caches.append((pts, tables))
-        try:
-            results[name] = _fit_one(name, pts, vals, tables, degree=degree, max_degree=max_degree,
-                                     symmetry=symmetry, orders=None, r0=r0, valid=valid)
-        except ValueError as exc:
-            raise ValueError(f"axis {name}: {exc}") from None
+    plans: dict[str, _Plan] = {}
+    try:
+        for name in AXES:
+            plans[name] = _axis_plan(name, checked[name][0].shape[0], degree=degree, max_degree=max_degree,
+                                     symmetry=symmetry, orders=None)
+            point_sets[name].register(plans[name].terms, name, checked[name][1])
+        for name in AXES:
+            results[name] = _fit_one(name, point_sets[name], plans[name], checked[name][1], degree=degree,
+                                     max_degree=max_degree, r0=r0, valid=valid)
+    except ValueError as exc:
+        raise ValueError(f"axis {name}: {exc}") from None
     table, rms_in, max_in, growth, per_axis = _error_summary(results, valid)
     axes = {}
     for name, res in results.items():
