@@ -29,9 +29,15 @@ LATTICE_STEP_MM = 20.0
 
 
 @lru_cache(maxsize=1)
+def truth_coils():
+    """The Biot-Savart coil set (built once per test process)."""
+    return coil_set()
+
+
+@lru_cache(maxsize=1)
 def biot_savart():
     """The coil set and its tabulated encoding (built once per test process)."""
-    coils = coil_set()
+    coils = truth_coils()
     lattice = LatticeEncoder(coils, [-LATTICE_HALF_MM] * 3, [LATTICE_HALF_MM] * 3, LATTICE_STEP_MM)
     return coils, lattice
 
@@ -48,9 +54,8 @@ def encoder(points_device_mm: np.ndarray) -> np.ndarray:
 
 def true_displacement_mm(points_device_mm: np.ndarray) -> np.ndarray:
     """Biot-Savart displacement u(r) - r (mm), directly (no lattice)."""
-    coils, _ = biot_savart()
     pts = np.asarray(points_device_mm, float)
-    return encode_direct(coils, pts) - pts
+    return encode_direct(truth_coils(), pts) - pts
 
 
 def lattice_phantom(spacing_mm: float, extent_mm: float, *, diameter_mm: float = 6.0):

@@ -25,6 +25,7 @@ from phantomscan import (
     lattice_phantom,
     simulate_scan,
     true_displacement_mm,
+    truth_coils,
 )
 from scipy.optimize import curve_fit
 from scipy.spatial.transform import Rotation
@@ -64,9 +65,8 @@ POSE_TRANSLATION_RAS_MM = np.array([4.0, -6.0, 8.0])
 
 def _observed(markers_mm, frame_true: DeviceFrame, rng, noise_mm=CENTROID_NOISE_MM):
     """Biot-Savart encoded marker centres (RAS mm) with centroid noise (no image)."""
-    coils, _ = biot_savart()
     world = markers_mm @ POSE_ROTATION.T + POSE_TRANSLATION_RAS_MM
-    encoded = encode_direct(coils, frame_true.to_device(world))
+    encoded = encode_direct(truth_coils(), frame_true.to_device(world))
     return frame_true.to_ras(encoded) + rng.normal(scale=noise_mm, size=world.shape)
 
 
@@ -91,7 +91,7 @@ def test_simulated_scan_gives_the_biot_savart_model_and_pose(demo_definition):
         d.markers_mm, d.diameters_mm, body_radius_mm=d.body["radius_mm"], rotation=POSE_ROTATION,
         translation_ras_mm=POSE_TRANSLATION_RAS_MM, frame=frame, voxel_mm=2.0, fov_mm=300.0,
         noise_sigma=0.02, seed=20261202)
-    coils, lattice = biot_savart()
+    _, lattice = biot_savart()
     markers_dev = frame.to_device(phantom.markers_ras_mm())
     assert lattice.error_mm(markers_dev).max() < SIMULATION_TOL_MM
 
@@ -243,3 +243,21 @@ def test_terms_and_refusals():
     with pytest.raises(ValueError, match="surround"):
         lattice, _ = lattice_phantom(25.0, 100.0)
         fit_phantom([PhantomScan(lattice, lattice + [0, 0, 150.0], DeviceFrame("HFS"))], degree=3)
+
+
+def test_patient_position_and_table_offset_are_honoured(demo_definition):
+    # Feet-first, decubitus right, with a table offset: the device axes are a signed
+    # permutation of the patient's. The y saddles of the Biot-Savart set sit on a larger
+    # radius than the x saddles, so a model fitted in the wrong frame is visibly wrong
+    # (negative control).
+    d = demo_definition
+    frame = DeviceFrame("FFDR", offset_from_table_position((6.0, 10.0, -25.0)))
+    rng = np.random.default_rng(13)
+    obs = _observed(d.markers_mm, frame, rng)
+    fit = fit_phantom([PhantomScan(d.markers_mm, obs, frame)], degree=7)
+    assert _volume_rms(fit, frame, 120.0, rng) < DISPLACEMENT_RMS_TOL_MM
+    angle, shift = fit.pose.compose_error(RigidPose(POSE_ROTATION, POSE_TRANSLATION_RAS_MM))
+    assert shift < POSE_TRANSLATION_TOL_MM and angle < POSE_ROTATION_TOL_DEG
+    wrong = DeviceFrame("HFS", frame.isocenter_offset_mm)
+    misfit = fit_phantom([PhantomScan(d.markers_mm, obs, wrong)], degree=7)
+    assert _volume_rms(misfit, frame, 120.0, rng) > 2 * DISPLACEMENT_RMS_TOL_MM
