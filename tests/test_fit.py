@@ -561,3 +561,19 @@ def test_fit_provenance_round_trips_and_is_checked(rng, tmp_path):
     (tmp_path / "bad.json").write_text(json.dumps(doc))
     with pytest.raises(InputError, match="source.samples"):
         load_coil(tmp_path / "bad.json")
+
+
+def test_fitted_model_files_follow_the_published_schema(rng, tmp_path):
+    # Reference: JSON Schema draft 2020-12 as implemented by the jsonschema package, applied to
+    # docs/coil-model.schema.json (the fit keys of the source object).
+    jsonschema = pytest.importorskip("jsonschema")
+    from pathlib import Path
+
+    schema = json.loads((Path(__file__).resolve().parents[1] / "docs" / "coil-model.schema.json")
+                        .read_text(encoding="utf-8"))
+    model, _ = fit_samples(synthetic_samples(rng, sphere_points(rng, 300, 150.0)), degree=3,
+                           date="2026-12-02")
+    doc = json.loads(save_coil(model, tmp_path / "fit.json").read_text(encoding="utf-8"))
+    jsonschema.Draft202012Validator(schema).validate(doc)
+    doc["source"]["residual_max_mm"] = -0.5
+    assert not jsonschema.Draft202012Validator(schema).is_valid(doc)

@@ -34,6 +34,21 @@ CAUTION = ("For research pipelines only: not for diagnosis. A fitted coil model 
            "the scanner's QA; defer to local scanner QA and licensed practice.")
 
 
+def _one_blas_thread():
+    """One BLAS thread for the fit, when threadpoolctl is installed.
+
+    On the idle 2-core machine one thread was as fast as two for the 20,000 x 324 QR; on a
+    loaded one threaded BLAS was measured up to 8 times slower (``benchmarks/bench_fit.py``).
+    """
+    import contextlib
+
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - optional
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=1, user_api="blas")
+
+
 def _gradients(gradient_mT_per_m) -> dict:
     """Per-axis nominal gradients from one value, three values or a mapping (None: from the files)."""
     from ..coil import AXES
@@ -130,10 +145,11 @@ def fit_field_sample_files(
                for a, s in loaded.items()}
     date = date or datetime.datetime.now(datetime.timezone.utc).date().isoformat()
     try:
-        model, summary = fit_samples(
-            samples, degree=degree, max_degree=max_degree or DEFAULT_MAX_DEGREE, symmetry=symmetry,
-            reference_radius_mm=reference_radius_mm, valid_radius_mm=valid_radius_mm, label=label,
-            description=description, date=date, method="field-samples")
+        with _one_blas_thread():
+            model, summary = fit_samples(
+                samples, degree=degree, max_degree=max_degree or DEFAULT_MAX_DEGREE, symmetry=symmetry,
+                reference_radius_mm=reference_radius_mm, valid_radius_mm=valid_radius_mm, label=label,
+                description=description, date=date, method="field-samples")
     except ValueError as exc:
         found = re.match(r"axis ([xyz]): ", str(exc))
         where = loaded[found.group(1)].source if found else ", ".join(s.source for s in loaded.values())
