@@ -663,16 +663,20 @@ def _cmd_fit_samples(args, progress: _Progress) -> None:
         table_position_mm=args.table_position, isocenter_offset_mm=args.isocenter_offset,
         label=args.label, description=args.description, date=args.date, out_summary=args.out_summary,
         report_dir=args.report)
+    def num(value, spec: str) -> str:
+        return "n/a" if value is None else format(value, spec)
+
     print(f"degree           {s['degree_choice']}; symmetry {s['symmetry']}")
     print("axis  degree  samples   rms (mm)   max (mm)  held-out rms (mm)  condition")
     for name, a in s["axes"].items():
-        print(f"{name:4}  {a['degree']:6d}  {a['samples']:7d}  {a['residual_rms_mm']:9.4f}  "
-              f"{a['residual_max_mm']:9.4f}  {a['cv_rms_mm']:17.4f}  {a['condition_number']:9.3g}")
-    err = s["predicted_error_max_mm"]
+        print(f"{name:4}  {a['degree']:6d}  {a['samples']:7d}  {num(a['residual_rms_mm'], '9.4f')}  "
+              f"{num(a['residual_max_mm'], '9.4f')}  {num(a['cv_rms_mm'], '17.4f')}  "
+              f"{num(a['condition_number'], '9.3g')}")
+    err, growth = s["predicted_error_max_mm"], s["growth_exponent"]
     print(f"valid radius     {s['valid_radius_mm']:.1f} mm (samples cover {s['sampled_radius_mm']:.1f} mm)")
     print("predicted error  " + ("unknown" if err is None else
-                                 f"max {err:.4f} mm inside the valid radius; grows as r^"
-                                 f"{s['growth_exponent']:.1f} outside"))
+                                 f"max {err:.4f} mm inside the valid radius"
+                                 + ("" if growth is None else f"; grows as r^{growth:.1f} outside")))
     for w in s["warnings"]:
         print(f"warning          {w['axis'] or 'all'}: {w['code']}: {w['message']}")
     print(f"wrote            {args.out}")

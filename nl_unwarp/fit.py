@@ -577,6 +577,9 @@ def _axis_plan(axis: str | None, samples: int, *, degree: int | None, max_degree
     counts = {d: sum(1 for _, n, _ in all_terms if n <= d) for d in range(top + 1)}
     wanted = [degree] if degree is not None else [
         d for d in range(1, max_degree + 1) if counts[d] > counts[d - 1]]
+    if degree is not None and counts[degree] == 0:
+        raise ValueError(f"no terms to fit up to degree {degree} with symmetry {symmetry!r}: raise "
+                         "the degree")
     if degree is not None and samples < counts[degree]:
         raise ValueError(f"{samples} samples cannot determine {counts[degree]} terms of degree "
                          f"{degree}: add samples or lower the degree")

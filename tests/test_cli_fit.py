@@ -157,3 +157,18 @@ def test_the_interface_writes_what_the_command_writes(sample_dir, tmp_path, caps
     assert result.outputs.out_coil and os.path.exists(result.outputs.out_report)
     with open(result.outputs.out_coil, encoding="utf-8") as node_coil:
         assert json.load(node_coil)["axes"] == json.loads(cli_out.read_text())["axes"]
+
+
+def test_exactly_determined_samples_report_what_is_unknown(tmp_path, capsys):
+    # 16 samples for the 16 terms of degree 3: the fit passes through every sample, so no
+    # sample can be held out and no degree-5 comparison exists; the command says so.
+    rng = np.random.default_rng(2)
+    v = rng.normal(size=(16, 3))
+    points = 100.0 * v / np.linalg.norm(v, axis=1, keepdims=True)
+    for c, name in enumerate(AXES):
+        write_field_samples(tmp_path / f"{name}.tsv", points, points[:, c] * 0.04, gradient_mT_per_m=40.0)
+    assert main(_argv(tmp_path, tmp_path / "coil.json", "--degree", "3")) == 0
+    stdout = capsys.readouterr().out
+    assert "n/a" in stdout and "predicted error  unknown" in stdout and "no-error-estimate" in stdout
+    model = load_coil(tmp_path / "coil.json")
+    assert model.axes["x"].linear_coefficient("x") == pytest.approx(1.0, abs=1e-9)
