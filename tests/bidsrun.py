@@ -41,10 +41,28 @@ def child_env(**changes: str | None) -> dict[str, str]:
     return env
 
 
+def die_with_parent() -> None:
+    """In the child before exec: SIGKILL it if the test process dies (Linux prctl), so that
+    not even a killed test run leaves a pipeline running; its workers exit with it."""
+    try:
+        import ctypes
+
+        pr_set_pdeathsig = 1  # <linux/prctl.h>
+        ctypes.CDLL(None, use_errno=True).prctl(pr_set_pdeathsig, signal.SIGKILL)
+    except (OSError, AttributeError):  # not Linux: the process-group kill still applies
+        pass
+
+
+def start_cli(command: list[str], env: dict[str, str], **streams) -> subprocess.Popen:
+    """Start the command in its own process group (and session), tied to this process."""
+    return subprocess.Popen(command, env=env, start_new_session=True, preexec_fn=die_with_parent,
+                            **streams)
+
+
 def run_cli(command: list[str], env: dict[str, str] | None = None) -> subprocess.CompletedProcess:
     """Run the command to its end in a new process group; kill the group if it hangs."""
-    proc = subprocess.Popen(command, env=env or child_env(), stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True, start_new_session=True)
+    proc = start_cli(command, env or child_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                     text=True)
     try:
         stdout, stderr = proc.communicate(timeout=RUN_TIMEOUT_S)
     except subprocess.TimeoutExpired:

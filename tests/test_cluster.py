@@ -14,6 +14,7 @@ import os
 import pwd
 import shutil
 import subprocess
+import uuid
 
 import pytest
 from bidsgen import make_study
@@ -38,7 +39,7 @@ def _sinfo(*fields: str) -> list[str]:
 
 def _slurm_partition() -> str:
     """The default partition of a cluster with an idle node; skip the test otherwise."""
-    for tool in ("sinfo", "squeue", "sbatch"):
+    for tool in ("sinfo", "squeue", "sbatch", "scancel"):
         if shutil.which(tool) is None:
             pytest.skip(f"{tool} not found: Slurm is not installed here "
                         "(CI installs and starts a one-node cluster with .ci/slurm-up)")
@@ -51,6 +52,15 @@ def _slurm_partition() -> str:
         pytest.skip(f"no idle Slurm node (sinfo: {'; '.join(states) or 'no nodes'})")
     default = [p.rstrip("*") for p in partitions if p.endswith("*")]
     return (default or [partitions[0]])[0]
+
+
+def _cancel_jobs(comment: str) -> None:
+    """scancel every job still known to Slurm with this comment."""
+    out = subprocess.run(["squeue", "-h", "-o", "%i %k"], capture_output=True, text=True,
+                         timeout=SINFO_TIMEOUT_S)
+    ids = [line.split()[0] for line in out.stdout.splitlines() if line.split()[1:] == [comment]]
+    if ids:
+        subprocess.run(["scancel", *ids], timeout=SINFO_TIMEOUT_S, check=False)
 
 
 @pytest.fixture
@@ -69,12 +79,19 @@ def test_slurm_plugin_run_equals_multiproc_run(study, tmp_path):
     # logs in a folder of our own (nipype adds its own -o only when none is given).
     logs = tmp_path / "slurm_logs"
     logs.mkdir()
-    plugin_args = {"sbatch_args": f"-p {partition} -c 1 -o {logs}/nlu-%j.out", "max_jobs": MAX_JOBS}
+    # A comment of this test's own marks its jobs, so that none is left queued if it fails.
+    comment = f"nlutest_{uuid.uuid4().hex[:12]}"  # no "-e": nipype looks for it
+    plugin_args = {"sbatch_args": f"-p {partition} -c 1 -o {logs}/nlu-%j.out --comment={comment}",
+                   "max_jobs": MAX_JOBS}
     # No LOGNAME, as under cron, CI or a container with an arbitrary uid: nipype's batch
     # plugins name jobs after it (app._set_login_name provides it).
     env = child_env(LOGNAME=None, USER=None)
-    slurm = run_cli(cli_command(study.root, tmp_path / "deriv_slurm", tmp_path / "work_slurm", *common,
-                                "--plugin", "SLURM", "--plugin-args", json.dumps(plugin_args)), env)
+    try:
+        slurm = run_cli(cli_command(study.root, tmp_path / "deriv_slurm", tmp_path / "work_slurm",
+                                    *common, "--plugin", "SLURM", "--plugin-args", json.dumps(plugin_args)),
+                        env)
+    finally:
+        _cancel_jobs(comment)
     assert slurm.returncode == 0, slurm.stderr
 
     # The nodes ran as Slurm jobs, with the -o we passed: one log per job, each a node's run.
@@ -140,3 +157,14 @@ def test_local_plugins_poll_quickly_batch_plugins_keep_nipype_default(tmp_path):
     # Each round of a batch plugin runs squeue (qstat, ...) per job: nipype's pace is kept.
     for plugin in ("SLURM", "SGE", "PBS"):
         assert "poll_sleep_duration" not in app._execution_config(plugin, tmp_path / "crash")
+
+
+def test_heap_is_frozen_during_the_run_only():
+    import gc
+
+    before = gc.get_freeze_count()
+    with app._frozen_heap():
+        # Python documentation, gc.freeze: every object alive now is moved to the permanent
+        # generation, which collections do not scan.
+        assert gc.get_freeze_count() > before
+    assert gc.get_freeze_count() == 0  # gc.unfreeze puts them all back

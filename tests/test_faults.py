@@ -23,6 +23,7 @@ from bidsrun import (
     group_alive,
     kill_group,
     run_cli,
+    start_cli,
     tree_differences,
     unfinished_files,
 )
@@ -69,8 +70,7 @@ def _run_and_kill(command, env, work, stderr_file, kill_after: int) -> int:
     Returns the number of nodes finished when it was killed.
     """
     with open(stderr_file, "wb") as err:
-        proc = subprocess.Popen(command, env=env, stdout=subprocess.DEVNULL, stderr=err,
-                                start_new_session=True)
+        proc = start_cli(command, env, stdout=subprocess.DEVNULL, stderr=err)
     try:
         deadline = time.monotonic() + START_TIMEOUT_S
         while True:

@@ -6,11 +6,13 @@ The CLI (``nl-unwarp BIDS_DIR OUTPUT_DIR participant``) parses its options into
 
 from __future__ import annotations
 
+import gc
 import getpass
 import json
 import logging
 import os
 from collections.abc import Callable
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -111,6 +113,23 @@ def _execution_config(plugin: str, crash_dir: Path) -> dict:
     if plugin in LOCAL_PLUGINS:
         settings["poll_sleep_duration"] = LOCAL_POLL_S
     return settings
+
+
+@contextmanager
+def _frozen_heap():
+    """Keep what exists now (imports, dataset index, workflow) out of the garbage collector's scans.
+
+    nipype's MultiProc calls ``gc.collect()`` after every node it runs in the main process
+    (our sinks); each full collection walks the whole heap, which made those calls most of
+    a run's time on tens of subjects (benchmarks/bench_load.py). ``gc.freeze`` (Python
+    documentation, gc module) moves the objects alive now to a generation that is never
+    scanned; objects made during the run are collected as usual.
+    """
+    gc.freeze()
+    try:
+        yield
+    finally:
+        gc.unfreeze()
 
 
 def _set_threads(n: int | None) -> None:
@@ -215,8 +234,9 @@ def run(options: RunOptions, *, plan: Plan | None = None) -> tuple[list[dict], l
     if workflow.list_node_names():
         before = set(crash_dir.glob("crash-*")) if crash_dir.exists() else set()
         try:
-            workflow.run(plugin=options.plugin,
-                         plugin_args=_plugin_args(options, len(workflow.list_node_names())))
+            with _frozen_heap():
+                workflow.run(plugin=options.plugin,
+                             plugin_args=_plugin_args(options, len(workflow.list_node_names())))
         except RuntimeError:
             after = set(crash_dir.glob("crash-*")) if crash_dir.exists() else set()
             failures = sorted(str(p) for p in after - before) or ["see the nipype log"]
