@@ -36,7 +36,12 @@ def add_fit_phantom_parser(kinds, add_frame_options: Callable[[argparse.Argument
                    help="also fit a correction common to every scan's isocenter offset (needs --symmetry "
                         "mirror or axial: without it the offset is not determined)")
     q.add_argument("--loss-scale-mm", type=float, metavar="MM",
-                   help="residual scale of the robust (soft L1) loss, mm (default: 0.1)")
+                   help="residual scale of the robust (soft L1) loss, mm (default: three robust "
+                        "standard deviations of the residuals of a first least-squares fit)")
+    q.add_argument("--phantom-rotation", nargs=3, type=float, metavar=("RX", "RY", "RZ"),
+                   help="rough rotation of the phantom in world RAS, degrees about x, then y, then z "
+                        "(default: its axes roughly along the world's; matching tries the 24 "
+                        "axis-aligned turns about it and needs to start within a few degrees)")
     q.add_argument("--scan-table-position", nargs=3, type=float, action="append",
                    metavar=("TP1", "TP2", "TP3"),
                    help="BIDS TablePosition of one scan, mm; repeat once per IMAGE, in order")
@@ -78,7 +83,8 @@ def run_fit_phantom(args, progress) -> None:
                           table_positions=tables, isocenter_offsets=offsets, symmetry=args.symmetry,
                           fit_isocenter_offset=args.fit_isocenter_offset, loss_scale_mm=args.loss_scale_mm,
                           report_dir=args.report, markers_tsv=args.markers_tsv, label=args.label,
-                          date=args.date, step=progress.step, out_summary=args.out_summary)
+                          date=args.date, step=progress.step, out_summary=args.out_summary,
+                          phantom_rotation_deg=args.phantom_rotation)
     print(f"phantom          {s['phantom']}")
     print("scan                          detected  matched  missing  spurious  rms (mm)")
     for scan in s["scans"]:

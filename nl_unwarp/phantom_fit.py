@@ -69,7 +69,7 @@ from .markers import RigidPose, kabsch
 
 __all__ = [
     "DEFAULT_LOSS",
-    "DEFAULT_LOSS_SCALE_MM",
+    "AUTO_SCALE_SIGMAS",
     "MAX_DEGREE",
     "PhantomFit",
     "PhantomScan",
@@ -84,9 +84,16 @@ MAX_DEGREE = 9
 #: Robust loss of ``least_squares``: ``soft_l1`` behaves like least squares for
 #: residuals below the scale and like an L1 fit beyond it (scipy documentation).
 DEFAULT_LOSS = "soft_l1"
-#: Residual scale of the robust loss, mm: about three times the centroid noise
-#: of a typical scan (a few hundredths of a mm), far below a mismatch.
-DEFAULT_LOSS_SCALE_MM = 0.1
+#: Residual scale of the robust loss when none is given: this many robust
+#: standard deviations (1.4826 MAD) of the residuals of a first, plain
+#: least-squares fit. Residuals within it are treated as in least squares;
+#: wrong markers, far beyond, weigh as in an L1 fit.
+AUTO_SCALE_SIGMAS = 3.0
+#: Least automatic scale, mm (exact synthetic data would otherwise give zero).
+LOSS_SCALE_FLOOR_MM = 0.005
+#: Robust fits at most, each with the scale re-estimated from the one before
+#: (stops when the scale changes by less than 5 %).
+AUTO_SCALE_ROUNDS = 3
 #: Step of the central difference of ``R(theta) q`` in the rotation vector, rad
 #: (the difference of a rotation of points ~200 mm: error ~ step^2 * 200 mm).
 ROTATION_STEP_RAD = 1e-6
@@ -320,6 +327,11 @@ class _Problem:
         return jac.reshape(3 * k, self.n_params)
 
 
+def _auto_scale(residuals: np.ndarray) -> float:
+    """:data:`AUTO_SCALE_SIGMAS` robust standard deviations (1.4826 MAD about 0) of residuals, mm."""
+    return max(AUTO_SCALE_SIGMAS * 1.4826 * float(np.median(np.abs(residuals))), LOSS_SCALE_FLOOR_MM)
+
+
 def _loss_weights(residuals: np.ndarray, loss: str, scale: float) -> np.ndarray:
     """``rho'(z)``, ``z = (f / scale)^2``, of scipy's robust losses (scipy documentation)."""
     z = (residuals / scale) ** 2
@@ -361,7 +373,7 @@ def fit_phantom(
     symmetry: str = "none",
     fit_isocenter_offset: bool = False,
     loss: str = DEFAULT_LOSS,
-    loss_scale_mm: float = DEFAULT_LOSS_SCALE_MM,
+    loss_scale_mm: float | None = None,
     label: str = "phantom fit",
     max_nfev: int | None = None,
 ) -> PhantomFit:
@@ -384,8 +396,13 @@ def fit_phantom(
         Restrict the terms to those of a symmetric design (:func:`free_terms`).
     fit_isocenter_offset : bool
         Also fit a correction common to all scans' isocenter offsets.
-    loss, loss_scale_mm : str, float
-        Robust loss of ``scipy.optimize.least_squares`` and its residual scale (mm).
+    loss : str
+        Robust loss of ``scipy.optimize.least_squares`` (default soft L1).
+    loss_scale_mm : float, optional
+        Its residual scale, mm; by default :data:`AUTO_SCALE_SIGMAS` robust
+        standard deviations of the residuals of a first least-squares fit (from
+        which the robust fit then starts), re-estimated from the robust fit's
+        residuals until it settles (at most :data:`AUTO_SCALE_ROUNDS` fits).
     label : str
         Label of the coil model.
     max_nfev : int, optional
@@ -426,8 +443,26 @@ def fit_phantom(
     problem = _Problem(scans, pose0, terms, r0, fit_isocenter_offset)
     x0 = np.zeros(problem.n_params)
     x0[3:6] = pose0.translation_ras_mm
-    result = least_squares(problem.residuals, x0, jac=problem.jacobian, method="trf", loss=loss,
-                           f_scale=loss_scale_mm, x_scale="jac", max_nfev=max_nfev)
+    auto = loss_scale_mm is None and loss != "linear"
+    if loss_scale_mm is None:
+        loss_scale_mm = 1.0
+        if auto:
+            first = least_squares(problem.residuals, x0, jac=problem.jacobian, method="trf", x_scale="jac",
+                                  max_nfev=max_nfev)
+            x0 = first.x
+            loss_scale_mm = _auto_scale(problem.residuals(x0))
+    elif not loss_scale_mm > 0:
+        raise ValueError(f"the loss scale must be a positive number of mm, got {loss_scale_mm}")
+    for _ in range(AUTO_SCALE_ROUNDS if auto else 1):
+        result = least_squares(problem.residuals, x0, jac=problem.jacobian, method="trf", loss=loss,
+                               f_scale=loss_scale_mm, x_scale="jac", max_nfev=max_nfev)
+        x0 = result.x
+        if auto:
+            # Wrong markers inflate the first fit's residuals; re-estimate from the robust fit.
+            new_scale = _auto_scale(problem.residuals(x0))
+            if abs(new_scale - loss_scale_mm) <= 0.05 * loss_scale_mm:
+                break
+            loss_scale_mm = new_scale
     x = result.x
     res = problem.residuals(x)
     jac = problem.jacobian(x)

@@ -212,3 +212,31 @@ def test_interface_gives_the_command_s_model(scans, tmp_path, capsys):
         np.testing.assert_array_equal(ours.axes[axis].beta, cli.axes[axis].beta)
     assert Path(result.outputs.out_markers).exists()
     assert result.outputs.summary["markers"] == scans["markers"]
+
+
+def test_a_turned_phantom_needs_its_rough_rotation(scans, tmp_path, capsys):
+    # The phantom turned 30 degrees about z: from the world axes no orientation matches;
+    # given a rough rotation (27 degrees) the fit finds the true pose.
+    markers, diameters = lattice_phantom(20.0, MARKER_EXTENT_MM)
+    turned = Rotation.from_euler("z", 30.0, degrees=True) * ROTATION
+    image, affine, _ = simulate_scan(markers, diameters, body_radius_mm=BODY_RADIUS_MM,
+                                     rotation=turned.as_matrix(), translation_ras_mm=TRANSLATION_RAS_MM,
+                                     frame=DeviceFrame("HFS"), voxel_mm=2.5, fov_mm=210.0, noise_sigma=0.02,
+                                     seed=7)
+    path = tmp_path / "turned.nii.gz"
+    nib.save(nib.Nifti1Image(image, affine), str(path))
+    base = ["fit", "phantom", path, "--phantom", scans["definition"], "--degree", 5, "--isocenter-offset",
+            0, 0, 0, "--out-summary", tmp_path / "s.json"]
+    code, _, err = _run([*base, "--out", tmp_path / "coil.json", "--phantom-rotation", 0, 0, 27], capsys)
+    assert code == 0, err
+    pose = json.loads((tmp_path / "s.json").read_text())["pose"]
+    assert np.degrees((Rotation.from_matrix(pose["rotation"]) * turned.inv()).magnitude()) \
+        < POSE_ROTATION_TOL_DEG
+    code, _, err = _run(["--quiet", *base, "--out", tmp_path / "other.json"], capsys)
+    if code == 0:
+        # A match from the wrong start leaves markers out or lands on a wrong pose.
+        other = json.loads((tmp_path / "s.json").read_text())
+        wrong = np.degrees((Rotation.from_matrix(other["pose"]["rotation"]) * turned.inv()).magnitude())
+        assert wrong > 1.0 or other["scans"][0]["matched"] < scans["markers"] // 2
+    else:
+        assert code == 1 and "turned.nii.gz" in err and not (tmp_path / "other.json").exists()

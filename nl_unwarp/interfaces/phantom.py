@@ -88,7 +88,7 @@ def fit_phantom_files(
     markers_tsv: str | os.PathLike | None = None,
     label: str | None = None,
     date: str | None = None,
-    phantom_rotation=None,
+    phantom_rotation_deg=None,
     out_summary: str | os.PathLike | None = None,
     step=None,
 ) -> dict:
@@ -116,9 +116,11 @@ def fit_phantom_files(
         Per-marker residual table to write.
     label, date : str, optional
         Label and date of the coil model.
-    phantom_rotation : (3, 3) array-like, optional
-        Rough rotation of the phantom frame in world; matching tries the 24
-        axis-aligned orientations about it (default: the identity).
+    phantom_rotation_deg : 3 floats, optional
+        Rough rotation of the phantom frame in world RAS, as rotations about
+        the world x, y, z axes in that order (extrinsic, degrees); matching tries
+        the 24 axis-aligned orientations about it (default: none). Matching
+        starts within a few degrees of the truth or not at all.
     out_summary : path, optional
         Where to write the returned summary as JSON.
     step : callable, optional
@@ -138,7 +140,7 @@ def fit_phantom_files(
     from ..io.nifti import load_image
     from ..io.phantomdef import load_phantom_definition, write_marker_table
     from ..markers import detect_markers, match_any_orientation
-    from ..phantom_fit import DEFAULT_LOSS, DEFAULT_LOSS_SCALE_MM, MAX_DEGREE, PhantomScan, fit_phantom
+    from ..phantom_fit import DEFAULT_LOSS, MAX_DEGREE, PhantomScan, fit_phantom
     from ..report.pages import coil_page_name, render_coil_page
     from ..report.phantompage import render_phantom_page
 
@@ -151,6 +153,15 @@ def fit_phantom_files(
         raise InputError("--fit-isocenter-offset", "needs --symmetry mirror or axial: without a symmetry "
                                                    "the isocenter offset is not determined by the scans")
     definition = load_phantom_definition(phantom)
+    base_rotation = None
+    if phantom_rotation_deg is not None:
+        from scipy.spatial.transform import Rotation
+
+        angles = np.asarray(phantom_rotation_deg, dtype=float).reshape(-1)
+        if angles.shape != (3,) or not np.all(np.isfinite(angles)):
+            raise InputError("--phantom-rotation", f"give three finite angles in degrees, got "
+                                                   f"{phantom_rotation_deg!r}")
+        base_rotation = Rotation.from_euler("xyz", angles, degrees=True).as_matrix()
     frames = [make_frame(spec)[0] for spec in _scan_frames(images, position, table_positions,
                                                            isocenter_offsets)]
     scans, scan_info = [], []
@@ -162,7 +173,7 @@ def fit_phantom_files(
                                marker_diameter_mm=definition.typical_diameter_mm)
         try:
             match = match_any_orientation(definition.markers_mm, found.centroids_ras_mm,
-                                          base_rotation=phantom_rotation)
+                                          base_rotation=base_rotation)
         except ValueError as exc:
             raise InputError(str(path), f"markers: {exc}") from None
         label_s = Path(path).name
@@ -180,7 +191,7 @@ def fit_phantom_files(
         with _blas_single_thread():
             fit = fit_phantom(scans, degree=degree, symmetry=symmetry,
                               fit_isocenter_offset=fit_isocenter_offset, loss=loss or DEFAULT_LOSS,
-                              loss_scale_mm=DEFAULT_LOSS_SCALE_MM if loss_scale_mm is None else loss_scale_mm,
+                              loss_scale_mm=loss_scale_mm,
                               label=label or f"phantom fit ({definition.name})")
     except ValueError as exc:
         raise InputError(str(phantom), f"fit: {exc}") from None
@@ -252,8 +263,10 @@ class _FitPhantomInputSpec(BaseInterfaceInputSpec):
     symmetry = traits.Enum("none", "mirror", usedefault=True, desc="impose the mirror symmetry of the design")
     fit_isocenter_offset = traits.Bool(False, usedefault=True,
                                        desc="also fit a common isocenter correction (needs mirror symmetry)")
-    loss_scale_mm = traits.Float(desc="residual scale of the robust loss, mm")
+    loss_scale_mm = traits.Float(desc="residual scale of the robust loss, mm (default: from a first fit)")
     label = traits.Str(desc="label of the coil model")
+    phantom_rotation_deg = traits.List(traits.Float, minlen=3, maxlen=3,
+                                       desc="rough phantom rotation about world x, y, z (degrees)")
     report = traits.Bool(True, usedefault=True, desc="write the report pages")
 
 
@@ -292,7 +305,8 @@ class FitPhantom(SimpleInterface):
             isocenter_offsets=optional(self.inputs, "isocenter_offsets"), symmetry=self.inputs.symmetry,
             fit_isocenter_offset=self.inputs.fit_isocenter_offset,
             loss_scale_mm=optional(self.inputs, "loss_scale_mm"), report_dir=report, markers_tsv=tsv,
-            label=optional(self.inputs, "label"))
+            label=optional(self.inputs, "label"),
+            phantom_rotation_deg=optional(self.inputs, "phantom_rotation_deg"))
         self._results.update(out_coil=coil, out_markers=tsv, summary=summary)
         if report is not None:
             self._results["out_report"] = summary["report"]
