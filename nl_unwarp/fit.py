@@ -26,7 +26,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Iterable, Mapping
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 
 import numpy as np
 from scipy.linalg import qr, solve_triangular
@@ -955,7 +955,7 @@ def fit_samples(
     axes = {}
     for name, res in results.items():
         rms_a, max_a = per_axis.get(name, (math.nan, math.nan))
-        axes[name] = _replace(res.report, predicted_error_rms_mm=rms_a, predicted_error_max_mm=max_a)
+        axes[name] = replace(res.report, predicted_error_rms_mm=rms_a, predicted_error_max_mm=max_a)
     warnings = [w for a in AXES for w in results[a].warnings]
     if valid > sampled * (1 + 1e-9):
         warnings.append(FitWarning("beyond-samples", None, (
@@ -974,12 +974,6 @@ def fit_samples(
                             description=description, date=date)
     model = CoilModel({a: results[a].expansion for a in AXES}, label=label, source=source)
     return model, summary
-
-
-def _replace(report: AxisFit, **changes) -> AxisFit:
-    from dataclasses import replace
-
-    return replace(report, **changes)
 
 
 def fit_coil(
