@@ -172,7 +172,7 @@ class PhantomFit:
     condition_number : float
         Of the column-normalised weighted Jacobian.
     nfev : int
-        Function evaluations of the solver.
+        Function evaluations of the solver, over all its runs.
     scans : list of dict
         Per scan: ``label, markers, residual_rms_mm, isocenter_offset_mm``.
     settings : dict
@@ -444,19 +444,20 @@ def fit_phantom(
     x0 = np.zeros(problem.n_params)
     x0[3:6] = pose0.translation_ras_mm
     auto = loss_scale_mm is None and loss != "linear"
+    nfev = 0
     if loss_scale_mm is None:
         loss_scale_mm = 1.0
         if auto:
             first = least_squares(problem.residuals, x0, jac=problem.jacobian, method="trf", x_scale="jac",
                                   max_nfev=max_nfev)
-            x0 = first.x
+            x0, nfev = first.x, int(first.nfev)
             loss_scale_mm = _auto_scale(problem.residuals(x0))
     elif not loss_scale_mm > 0:
         raise ValueError(f"the loss scale must be a positive number of mm, got {loss_scale_mm}")
     for _ in range(AUTO_SCALE_ROUNDS if auto else 1):
         result = least_squares(problem.residuals, x0, jac=problem.jacobian, method="trf", loss=loss,
                                f_scale=loss_scale_mm, x_scale="jac", max_nfev=max_nfev)
-        x0 = result.x
+        x0, nfev = result.x, nfev + int(result.nfev)
         if auto:
             # Wrong markers inflate the first fit's residuals; re-estimate from the robust fit.
             new_scale = _auto_scale(problem.residuals(x0))
@@ -487,7 +488,7 @@ def fit_phantom(
         coefficients=coefficients, markers=markers,
         residual_rms_mm=float(np.sqrt(np.mean(norms**2))), residual_max_mm=float(norms.max()),
         rigid_residual_rms_mm=float(np.sqrt(np.mean(rigid_norms**2))),
-        dof=dof, sigma_mm=sigma, condition_number=cond, nfev=int(result.nfev), scans=scan_rows,
+        dof=dof, sigma_mm=sigma, condition_number=cond, nfev=nfev, scans=scan_rows,
         settings={"degree": int(degree), "symmetry": symmetry, "loss": loss,
                   "loss_scale_mm": float(loss_scale_mm), "reference_radius_mm": r0,
                   "valid_radius_mm": valid, "fit_isocenter_offset": bool(fit_isocenter_offset)},
