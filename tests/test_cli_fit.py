@@ -172,3 +172,55 @@ def test_exactly_determined_samples_report_what_is_unknown(tmp_path, capsys):
     assert "n/a" in stdout and "predicted error  unknown" in stdout and "no-error-estimate" in stdout
     model = load_coil(tmp_path / "coil.json")
     assert model.axes["x"].linear_coefficient("x") == pytest.approx(1.0, abs=1e-9)
+
+
+#: A quadratic model inside the fitted basis, sampled without noise: only rounding remains.
+EXACT_TOL = 1e-9
+
+
+def test_nifti_field_maps_in_world_ras_are_mapped_to_the_device_frame(tmp_path, capsys):
+    # Field maps of a known model written in world RAS for a feet-first-supine scan with the
+    # table moved 30 mm into the bore. Device = R(FFS) LPS + (-tp1, -tp2, tp3) with
+    # LPS = diag(-1, -1, 1) RAS (DICOM PS3.3 C.7.6.2.1.1, C.7.3.1.1.2; BIDS TablePosition;
+    # docs/conventions.md), R(FFS) = diag(-1, 1, -1). The model in closed Schmidt form
+    # (C_2^1 = sqrt(3) x z, S_2^2 = sqrt(3) x y, C_2^0 = (3 z^2 - r^2) / 2 in units of R0).
+    import nibabel as nib
+
+    r0, gradient = 150.0, 40.0
+    a_x, b_y, a_z = 0.02, -0.015, 0.01
+
+    def encoded(dev):
+        x, y, z = (dev[..., i] / r0 for i in range(3))
+        return np.stack([r0 * (x + a_x * np.sqrt(3) * x * z), r0 * (y + b_y * np.sqrt(3) * x * y),
+                         r0 * (z + a_z * (3 * z * z - (x * x + y * y + z * z)) / 2)], -1)
+
+    affine = np.diag([12.0, 12.0, 12.0, 1.0])
+    affine[:3, 3] = -12.0 * 6 + np.array([3.0, -5.0, 7.0])
+    ijk = np.stack(np.meshgrid(*[np.arange(13)] * 3, indexing="ij"), -1).astype(float)
+    ras = ijk @ affine[:3, :3].T + affine[:3, 3]
+    tp = np.array([0.0, 0.0, 30.0])
+    device = (ras * [-1.0, -1.0, 1.0]) * [-1.0, 1.0, -1.0] + [-tp[0], -tp[1], tp[2]]
+    inside = np.linalg.norm(device, axis=-1) <= 70.0
+    u = encoded(device)
+    for c, name in enumerate(AXES):
+        bz = np.where(inside, u[..., c] * gradient * 1e-3, np.nan).astype(np.float64)
+        img = nib.Nifti1Image(bz, affine)
+        img.header.set_xyzt_units("mm")
+        nib.save(img, str(tmp_path / f"{name}.nii.gz"))
+    argv = ["--quiet", "fit", "samples", *sum(([f"--{a}", str(tmp_path / f"{a}.nii.gz")] for a in AXES), []),
+            "--gradient-mT-per-m", str(gradient), "--degree", "2", "--reference-radius-mm", str(r0),
+            "--position", "FFS", "--table-position", *map(str, tp), "--out", str(tmp_path / "coil.json")]
+    assert main(argv) == 0
+    model = load_coil(tmp_path / "coil.json")
+    assert model.axes["x"].alpha[2, 1] == pytest.approx(a_x, abs=EXACT_TOL)
+    assert model.axes["y"].beta[2, 2] == pytest.approx(b_y, abs=EXACT_TOL)
+    assert model.axes["z"].alpha[2, 0] == pytest.approx(a_z, abs=EXACT_TOL)
+    # Read as device-frame mm instead (no position given): for FFS, RAS y and z run against
+    # device y and z, those gradients come out reversed, and the fit is refused (the first
+    # reversed axis is named), not written.
+    capsys.readouterr()
+    argv_device = [a for a in argv if a not in ("--position", "FFS", "--table-position", *map(str, tp))]
+    assert main(argv_device[:-1] + [str(tmp_path / "as_device.json")]) == 1
+    err = capsys.readouterr().err
+    assert "y.nii.gz: gradient_mT_per_m: the fitted linear term is -1" in err
+    assert not (tmp_path / "as_device.json").exists()
