@@ -18,8 +18,11 @@ coefficients of degree ``d`` solve ``R[:k, :k] c = (Q^T b)[:k]``, and their
 leave-one-out residuals follow from the leverages ``h_i = sum_j<k Q_ij^2`` by
 the PRESS identity ``e_(i) = e_i / (1 - h_i)`` (Allen, Technometrics 16, 1974;
 any regression text). Cross-validated degree choice and the comparison fit of
-degree ``d + 2`` therefore cost no extra factorisation, and the harmonic table
-of a set of sample positions is computed once for all axes that share it.
+degree ``d + 2`` therefore cost no extra factorisation. ``Q`` itself is never
+formed: the QR of ``[A | b]`` gives ``R`` and ``Q^T b``, and the columns of ``Q``
+the leverages need are ``A R^{-1}``. Axes sampled at the same positions with the
+same terms share one factorisation (a right-hand side each), and the design is
+built column-major straight from the harmonic recurrences.
 """
 
 from __future__ import annotations
@@ -899,7 +902,7 @@ def fit_samples(
     samples_by_axis : mapping of str to (points_device_mm, encoded_mm)
         For each of ``"x"``, ``"y"``, ``"z"``: (N, 3) device positions (mm) and
         (N,) encoded positions (mm). Axes whose points are the same array (or
-        equal) share one harmonic table.
+        equal) and whose terms are the same share one QR factorisation.
     degree : int, optional
         Degree fitted to every axis; None: chosen per axis by leave-one-out
         cross-validation (one-standard-error rule) up to ``max_degree``.
