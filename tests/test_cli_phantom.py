@@ -91,6 +91,10 @@ def test_fit_phantom_writes_model_table_and_report(scans, tmp_path, capsys):
     assert "research" in stdout.lower()
     coil = load_coil(out / "coil.json")
     assert coil.source["kind"] == "fit" and coil.source["method"] == "phantom"
+    # The file is valid under the format's JSON schema (draft 2020-12, the jsonschema package).
+    jsonschema = pytest.importorskip("jsonschema")
+    schema = json.loads((Path(__file__).parents[1] / "docs" / "coil-model.schema.json").read_text())
+    jsonschema.Draft202012Validator(schema).validate(json.loads((out / "coil.json").read_text()))
     assert coil.source["samples"] == scans["markers"] and coil.source["date"] == "2026-12-02"
     assert _volume_rms(coil, DeviceFrame("HFS"), np.random.default_rng(1)) < DISPLACEMENT_RMS_TOL_MM
 
