@@ -104,7 +104,8 @@ def main() -> None:
     markers, diameters, image, affine, frame = _scene()
 
     def detect():
-        return detect_markers(image, affine, marker_diameter_mm=6.0, largest_diameter_mm=8.0)
+        return detect_markers(image, affine, marker_diameter_mm=6.0, largest_diameter_mm=8.0,
+                              expected_count=MARKERS)
 
     t_detect, found = _median(detect, args.repeats)
     t_match, match = _median(lambda: match_any_orientation(markers, found.centroids_ras_mm), args.repeats)

@@ -202,6 +202,7 @@ def detect_markers(
     *,
     marker_diameter_mm: float,
     largest_diameter_mm: float | None = None,
+    expected_count: int | None = None,
     threshold: float | None = None,
     smoothing_mm: float | None = None,
 ) -> Detections:
@@ -220,10 +221,15 @@ def detect_markers(
         Largest marker diameter of the definition (default: the typical one):
         sets the background box, the centroid ball and the upper end of the
         size gate.
+    expected_count : int, optional
+        Number of markers in the definition: the threshold's reference is then
+        the median of that many strongest candidate peaks (recommended; without
+        it, of the peaks above half the 95th percentile, which needs markers to
+        be most of the candidates).
     threshold : float, optional
         Threshold of the smoothed excess image; by default
-        :data:`THRESHOLD_FRACTION` of the median peak of the candidate blobs,
-        and at least :data:`THRESHOLD_NOISE_SIGMAS` noise standard deviations.
+        :data:`THRESHOLD_FRACTION` of the reference peak level, and at least
+        :data:`THRESHOLD_NOISE_SIGMAS` noise standard deviations.
     smoothing_mm : float, optional
         Gaussian smoothing (standard deviation, mm) of the image for the
         background and the threshold (default: half the largest voxel
@@ -257,9 +263,12 @@ def detect_markers(
         # Candidate blobs: local maxima above the noise floor, of marker scale.
         size = tuple(int(b) for b in np.maximum(np.ceil(marker_diameter_mm / zooms).astype(int) | 1, 3))
         peaks = smooth[(smooth == ndimage.maximum_filter(smooth, size=size)) & (smooth > floor)]
-        # The markers are most of the strong peaks: the median of those above half the
-        # 95th percentile (weak maxima at the body's edge and a few bright intruders aside).
-        if peaks.size:
+        if peaks.size and expected_count:
+            # The markers are the strongest peaks: the median of as many as there are markers.
+            peaks = np.sort(peaks)[-int(expected_count):]
+        elif peaks.size:
+            # Without a count: the median of the peaks above half the 95th percentile (weak
+            # maxima at the body's edge and a few bright intruders aside).
             peaks = peaks[peaks >= 0.5 * np.percentile(peaks, 95)]
         level = float(np.median(peaks)) if peaks.size else np.inf
         threshold = max(THRESHOLD_FRACTION * level, floor)

@@ -170,7 +170,9 @@ def fit_phantom_files(
         data = image.data if image.data.ndim == 3 else image.data[..., 0]
         say(f"detecting markers in {path}")
         found = detect_markers(np.asarray(data, dtype=np.float32), image.affine,
-                               marker_diameter_mm=definition.typical_diameter_mm)
+                               marker_diameter_mm=definition.typical_diameter_mm,
+                               largest_diameter_mm=float(definition.diameters_mm.max()),
+                               expected_count=len(definition.ids))
         try:
             match = match_any_orientation(definition.markers_mm, found.centroids_ras_mm,
                                           base_rotation=base_rotation)
