@@ -153,9 +153,12 @@ def main() -> None:
     for key in runs:
         peer = "lstsq, 1 BLAS thread" if "1 BLAS" in key else "numpy lstsq"
         print(f"{key:22} {medians[key]:11.3f} {min(times[key]):9.3f} {medians[key] / medians[peer]:8.2f}")
-    verdict = "meets" if medians["ours, degree 15"] < TARGET_S else "misses"
-    print(f"target: degree-15 fit < {TARGET_S:g} s: {verdict} it "
-          f"({medians['ours, degree 15'] / TARGET_S:.2f} of the target)")
+    for key, how in (("ours, 1 BLAS thread", "as `nl-unwarp fit samples` runs it"),
+                     ("ours, degree 15", "default BLAS threads")):
+        if key in medians:
+            verdict = "meets" if medians[key] < TARGET_S else "misses"
+            print(f"target: degree-15 fit < {TARGET_S:g} s, {how}: {verdict} it "
+                  f"({medians[key] / TARGET_S:.2f} of the target)")
     print(f"agreement with lstsq: largest coefficient difference {agreement:.2e}")
     print(f"fit: residual rms {max(a.residual_rms_mm for a in summary.axes.values()):.2e} mm "
           f"(noise {NOISE_MM:g} mm), predicted error inside {summary.predicted_error_max_mm:.2e} mm")
