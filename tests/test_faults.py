@@ -61,7 +61,10 @@ def _command(study, out, work) -> list[str]:
 
 def _finished_nodes(work) -> int:
     """Nodes whose result file nipype has written (each node writes one when it is done)."""
-    return len(list(work.rglob("result_*.pklz")))
+    try:
+        return len(list(work.rglob("result_*.pklz")))
+    except OSError:  # a folder appeared or moved during the walk: count again next poll
+        return 0
 
 
 def _run_and_kill(command, env, work, stderr_file, kill_after: int) -> int:
