@@ -78,6 +78,19 @@ def _volume_rms(fit, frame: DeviceFrame, radius_mm: float, rng, count: int = 400
     return float(np.sqrt(np.mean(np.sum(diff**2, axis=1))))
 
 
+@pytest.fixture(autouse=True)
+def _one_blas_thread():
+    """One BLAS thread, as ``fit phantom`` runs the fit: on the shared machine threaded
+    SVDs of these ~1500 x 200 matrices were up to 200 times slower (bench_phantom_fit)."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover
+        yield
+        return
+    with threadpool_limits(limits=1, user_api="blas"):
+        yield
+
+
 @pytest.fixture(scope="module")
 def demo_definition():
     return load_phantom_definition(demo_phantom_path())
