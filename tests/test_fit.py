@@ -275,7 +275,7 @@ INSIDE_TOL_MM = 0.05
 #: measured <= 4e-6 of the linear term with 1500 samples (allowed terms are 1e-4 .. 3e-2).
 SYMMETRY_LEAK = 2e-5
 #: The predicted error (difference to a degree d + 2 fit) against the true Biot-Savart error on
-#: spheres from 0.9 to 1.5 sampled radii: the same order of magnitude (measured within 20-40 %).
+#: spheres from 0.9 to 1.5 sampled radii: the same order of magnitude (measured 10-35 % above it).
 PREDICTION_FACTOR = 2.0
 SAMPLED_RADIUS_MM = 150.0
 
