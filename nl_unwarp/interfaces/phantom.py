@@ -31,6 +31,10 @@ log = logging.getLogger("nl_unwarp")
 
 #: Name of the phantom-fit page inside the report folder.
 REPORT_PAGE = "phantom_fit.html"
+#: A scan matching fewer than this fraction of the definition's markers, or a fit
+#: flagging more than this fraction as outliers, is warned about.
+MATCHED_WARN_FRACTION = 0.8
+OUTLIER_WARN_FRACTION = 0.05
 
 
 def _blas_single_thread():
@@ -179,6 +183,10 @@ def fit_phantom_files(
         except ValueError as exc:
             raise InputError(str(path), f"markers: {exc}") from None
         label_s = Path(path).name
+        if len(match.marker_index) < MATCHED_WARN_FRACTION * len(definition.ids):
+            log.warning("%s: only %d of the phantom's %d markers matched; check the definition, the "
+                        "scan's contrast and --phantom-rotation", path, len(match.marker_index),
+                        len(definition.ids))
         scans.append(PhantomScan(definition.markers_mm[match.marker_index],
                                  found.centroids_ras_mm[match.detection_index], frame,
                                  match.marker_index, label_s))
@@ -246,6 +254,10 @@ def fit_phantom_files(
         }
         if out_summary is not None:
             out.reserve(out_summary).write_text(json.dumps(summary, indent=2) + "\n", encoding="utf-8")
+    outliers = sum(m["outlier"] for m in fit.markers)
+    if outliers > OUTLIER_WARN_FRACTION * len(fit.markers):
+        log.warning("%d of %d markers are outliers of the fit (see the residual table)", outliers,
+                    len(fit.markers))
     if fit.isocenter_correction_mm is not None:
         worst = float(np.max(fit.isocenter_correction_sigma_mm))
         if worst > 1.0:
