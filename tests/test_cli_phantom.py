@@ -244,3 +244,23 @@ def test_a_turned_phantom_needs_its_rough_rotation(scans, tmp_path, capsys):
         assert wrong > 1.0 or other["scans"][0]["matched"] < scans["markers"] // 2
     else:
         assert code == 1 and "turned.nii.gz" in err and not (tmp_path / "other.json").exists()
+
+
+def test_markers_missing_from_the_scan_are_warned_about(scans, tmp_path, caplog):
+    # The definition lists markers the scanned phantom does not have (a lattice shell
+    # beyond 80 mm): they are left unmatched, the fit still runs, and a warning says so.
+    from nl_unwarp.interfaces.phantom import fit_phantom_files
+
+    doc = json.loads(scans["definition"].read_text())
+    ticks = np.arange(-4, 5) * 20.0
+    grid = np.stack(np.meshgrid(ticks, ticks, ticks, indexing="ij"), -1).reshape(-1, 3)
+    shell = grid[(np.linalg.norm(grid, axis=1) > MARKER_EXTENT_MM) & (np.linalg.norm(grid, axis=1) <= 90.0)]
+    doc["markers"] += [{"position_mm": p.tolist(), "diameter_mm": 6.0} for p in shell]
+    definition = tmp_path / "more.json"
+    definition.write_text(json.dumps(doc))
+    with caplog.at_level("WARNING", logger="nl_unwarp"):
+        s = fit_phantom_files([scans["images"][0]], definition, tmp_path / "coil.json", degree=4,
+                              isocenter_offsets=[(0.0, 0.0, 0.0)])
+    assert s["scans"][0]["matched"] == scans["markers"]
+    assert s["scans"][0]["missing"] == len(shell)
+    assert any("markers matched" in r.getMessage() for r in caplog.records)
