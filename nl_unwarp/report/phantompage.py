@@ -149,7 +149,8 @@ def render_phantom_page(fit, *, phantom_name: str, scans: Sequence[Mapping], coi
         "phantom's translation, the antisymmetric linear part its rotation, and the symmetric linear "
         "part the gradient calibration, which belongs to scanner QA. Standard errors are the "
         "Gauss-Newton estimate s² (JᵀJ)⁻¹ at the solution, with the robust loss's weights; they "
-        "assume independent centroid errors and say nothing of a wrong phantom definition.</p>",
+        "assume independent centroid errors, include any misfit of the model (a degree too low "
+        "inflates them) and say nothing of a wrong phantom definition.</p>",
         "<h2>Scans</h2>",
         table(["scan", "detected", "matched", "missing", "spurious", "rejected blobs",
                "isocenter offset (device, mm)", "residual rms (mm)"], _scan_rows(scans), table_id="scans"),
