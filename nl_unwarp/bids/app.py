@@ -18,10 +18,12 @@ from pathlib import Path
 
 from ..errors import InputError
 from ..io.atomic import OutputSet
+from ..io.lock import folder_lock
 from .names import derivative_name
 from .plan import Plan, check_dirs, index_dataset, make_plan
 
-__all__ = ["RunOptions", "build_plan", "run", "summary_rows"]
+__all__ = ["RunOptions", "build_plan", "merge_decisions", "read_decisions", "run", "runnable_node_count",
+           "summary_rows"]
 
 log = logging.getLogger("nl_unwarp")
 DECISIONS_FILE = "decisions.tsv"
@@ -74,15 +76,35 @@ def build_plan(options: RunOptions) -> Plan:
 
 
 def _status_callback(total: int, progress: Callable[[int, int], None]):
-    """A nipype ``status_callback`` that counts finished nodes (Linear, MultiProc, ...)."""
-    finished = [0]
+    """A nipype ``status_callback`` that counts finished nodes (Linear, MultiProc, ...).
 
-    def callback(_node, status: str) -> None:
+    Each node counts once: nipype reports a node that fails in the main process twice
+    (``exception``, then ``end``; nipype.pipeline.plugins.base).
+    """
+    finished: set = set()
+
+    def callback(node, status: str) -> None:
         if status in ("end", "exception"):
-            finished[0] += 1
-            progress(min(finished[0], total), total)
+            finished.add(getattr(node, "fullname", id(node)))
+            progress(min(len(finished), total), total)
 
     return callback
+
+
+def runnable_node_count(workflow) -> int:
+    """How many nodes nipype runs for ``workflow``: its nodes but the plain IdentityInterface
+    ones (``inputnode``, ``outputnode``), which nipype removes from the graph it executes
+    (``_remove_nonjoin_identity_nodes`` in nipype.pipeline.engine.utils). A MapNode counts
+    once, though nipype reports each of its subnodes too (our BIDS workflow has none)."""
+    from nipype.interfaces.utility import IdentityInterface
+
+    count = 0
+    for name in workflow.list_node_names():
+        node = workflow.get_node(name)
+        removed = (isinstance(node.interface, IdentityInterface) and node.iterables is None
+                   and not hasattr(node, "joinsource"))
+        count += not removed
+    return count
 
 
 def _plugin_args(options: RunOptions, total_nodes: int = 0) -> dict:
@@ -177,17 +199,68 @@ def summary_rows(plan: Plan, output_dir: Path) -> list[dict]:
     return rows
 
 
-def _write_decisions(rows: list[dict], output_dir: Path) -> None:
-    cols = ["image", "site", "rule", "decision", "displacement_max_mm", "reason", "warnings"]
-    lines = ["\t".join(cols)]
-    for row in rows:
-        value = {**row, "displacement_max_mm": "n/a" if row["displacement_max_mm"] is None
-                 else f"{row['displacement_max_mm']:.4f}"}
-        lines.append("\t".join(str(value[c]) for c in cols))
+#: Columns of decisions.tsv, one row per image; ``image`` is the key that runs merge on.
+DECISION_COLUMNS = ("image", "site", "rule", "decision", "displacement_max_mm", "reason", "warnings")
+
+
+def _tsv_cell(value) -> str:
+    """A table cell: tabs and line breaks would split the row, so they become spaces."""
+    return " ".join(str(value).split("\t")).replace("\r", " ").replace("\n", " ")
+
+
+def _decision_line(row: dict) -> str:
+    value = {**row, "displacement_max_mm": "n/a" if row["displacement_max_mm"] is None
+             else f"{row['displacement_max_mm']:.4f}"}
+    return "\t".join(_tsv_cell(value[c]) for c in DECISION_COLUMNS)
+
+
+def read_decisions(path: Path) -> dict[str, str]:
+    """The rows of an existing decisions.tsv by image (empty if there is none).
+
+    Raises
+    ------
+    InputError
+        The header is not ours or a row has the wrong number of cells.
+    """
+    if not path.exists():
+        return {}
+    lines = path.read_text(encoding="utf-8").splitlines()
+    if not lines or lines[0] != "\t".join(DECISION_COLUMNS):
+        raise InputError(str(path), "header differs from nl_unwarp's decision table "
+                                    f"({', '.join(DECISION_COLUMNS)}); move the file away")
+    rows = {}
+    for number, line in enumerate(lines[1:], start=2):
+        cells = line.split("\t")
+        if len(cells) != len(DECISION_COLUMNS):
+            raise InputError(str(path), f"line {number}: {len(cells)} cells, expected "
+                                        f"{len(DECISION_COLUMNS)}; fix or remove the line")
+        rows[cells[0]] = line
+    return rows
+
+
+def merge_decisions(rows: list[dict], output_dir: Path) -> Path:
+    """Write decisions.tsv: this run's rows replace those of the same images, the others stay.
+
+    Rows are sorted by image, so the table does not depend on the order of the runs that
+    filled it. Hold the folder's lock (:func:`nl_unwarp.io.lock.folder_lock`) around the call:
+    it reads, merges and writes.
+    """
+    target = output_dir / DECISIONS_FILE
+    merged = read_decisions(target)
+    merged.update({row["image"]: _decision_line(row) for row in rows})
+    lines = ["\t".join(DECISION_COLUMNS), *(merged[image] for image in sorted(merged))]
     with OutputSet() as out:
-        out.reserve(output_dir / DECISIONS_FILE).write_text("\n".join(lines) + "\n", encoding="utf-8")
-        out.reserve(output_dir / ".bidsignore").write_text(DECISIONS_FILE + "\nreports/\n",
-                                                           encoding="utf-8")
+        out.reserve(target).write_text("\n".join(lines) + "\n", encoding="utf-8")
+        bidsignore = output_dir / ".bidsignore"
+        text = DECISIONS_FILE + "\nreports/\n"
+        if not bidsignore.exists() or bidsignore.read_text(encoding="utf-8") != text:
+            out.reserve(bidsignore).write_text(text, encoding="utf-8")
+    return target
+
+
+def participants_of(plan: Plan) -> list[str]:
+    """The participant labels (``sub-XX``) of a plan's images."""
+    return sorted({row.relpath.split("/", 1)[0] for row in plan.rows})
 
 
 def run(options: RunOptions, *, plan: Plan | None = None) -> tuple[list[dict], list[str]]:
@@ -204,15 +277,19 @@ def run(options: RunOptions, *, plan: Plan | None = None) -> tuple[list[dict], l
     from nipype import config as nipype_config
 
     from ..workflows.bids import init_bids_unwarp_wf
-    from .derivatives import ensure_dataset, remove_partial_files
+    from .derivatives import check_description, ensure_dataset, remove_partial_files
 
     plan = plan or build_plan(options)
     plan.raise_problems()
     output_dir = Path(options.output_dir).resolve()
     work_dir = Path(options.work_dir or output_dir.parent / "nl_unwarp_work").resolve()
-    ensure_dataset(output_dir, options.bids_dir)
-    for stale in remove_partial_files(output_dir):
-        log.warning("removed %s, left by an interrupted run", stale)
+    # Several runs (cluster jobs, one per participant) may share the output folder; the
+    # dataset-level files are read, merged and written under its lock.
+    check_description(output_dir)
+    with folder_lock(output_dir):
+        ensure_dataset(output_dir, options.bids_dir)
+        for stale in remove_partial_files(output_dir, participants_of(plan)):
+            log.warning("removed %s, left by an interrupted run", stale)
     _set_threads(options.omp_nthreads)
     _set_login_name()
     _worker_config(work_dir)
@@ -236,13 +313,14 @@ def run(options: RunOptions, *, plan: Plan | None = None) -> tuple[list[dict], l
         try:
             with _frozen_heap():
                 workflow.run(plugin=options.plugin,
-                             plugin_args=_plugin_args(options, len(workflow.list_node_names())))
+                             plugin_args=_plugin_args(options, runnable_node_count(workflow)))
         except RuntimeError:
             after = set(crash_dir.glob("crash-*")) if crash_dir.exists() else set()
             failures = sorted(str(p) for p in after - before) or ["see the nipype log"]
     rows = summary_rows(plan, output_dir)
-    _write_decisions(rows, output_dir)
     from ..report.files import write_dataset_report
 
-    write_dataset_report(output_dir, plan)
+    with folder_lock(output_dir):
+        merge_decisions(rows, output_dir)
+        write_dataset_report(output_dir, plan)
     return rows, failures

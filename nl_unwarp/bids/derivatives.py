@@ -10,16 +10,18 @@ from __future__ import annotations
 import json
 import re
 import shutil
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from pathlib import Path
 
 from .. import __version__
+from ..errors import InputError
 from ..io.atomic import OutputSet
 from .metadata import PROVENANCE_KEY
 from .names import derivative_name
 
 __all__ = [
     "DATASET_LINK",
+    "check_description",
     "PIPELINE_NAME",
     "dataset_description",
     "ensure_dataset",
@@ -31,6 +33,8 @@ PIPELINE_NAME = "nl_unwarp"
 #: Name of the source dataset in BIDS URIs (``bids:raw:sub-01/...``), defined
 #: in DatasetLinks.
 DATASET_LINK = "raw"
+#: Folder of the HTML reports (nl_unwarp.report.files.REPORTS_DIR; the report layer imports us).
+REPORTS_FOLDER = "reports"
 _PARTIAL = re.compile(r"^\..+\.partial-[0-9a-f]{8}(\..+)?$")
 _DESCRIPTIONS = {
     "corrected": "Image corrected for gradient nonlinearity (pull-back resampling through the "
@@ -62,26 +66,83 @@ def dataset_description(source_dir: str | Path, source_description: Mapping | No
     }
 
 
-def remove_partial_files(out_dir: str | Path) -> list[Path]:
-    """Remove temporary ``.NAME.partial-XXXXXXXX`` files left by an interrupted run."""
-    removed = []
-    for path in Path(out_dir).rglob(".*.partial-*"):
-        if path.is_file() and _PARTIAL.match(path.name):
-            path.unlink()
-            removed.append(path)
+def _is_partial(path: Path) -> bool:
+    return path.is_file() and bool(_PARTIAL.match(path.name))
+
+
+def remove_partial_files(out_dir: str | Path, participants: Iterable[str]) -> list[Path]:
+    """Remove temporary ``.NAME.partial-XXXXXXXX`` files left by an interrupted run.
+
+    Only files a run of ``participants`` (labels with ``sub-``) owns are touched: those under
+    their ``sub-<label>/`` folders and their report pages (``reports/sub-<label>_*``), and the
+    dataset-level files (top folder and the rest of ``reports/``), which every run writes
+    under the output folder's lock (:func:`nl_unwarp.io.lock.folder_lock`; hold it while
+    calling this). Other participants' files may belong to a run going on now in another job.
+    """
+    out_dir = Path(out_dir)
+    owned = [out_dir / label for label in participants]
+    removed = [p for folder in owned if folder.is_dir() for p in folder.rglob(".*.partial-*")]
+    removed += [p for p in out_dir.glob(".*.partial-*")]
+    reports = out_dir / REPORTS_FOLDER
+    mine = tuple(f".{label}_" for label in participants)
+    removed += [p for p in reports.glob(".*.partial-*")
+                if p.name.startswith(mine) or not p.name.startswith(".sub-")]
+    removed = sorted(p for p in removed if _is_partial(p))
+    for path in removed:
+        path.unlink()
     return removed
 
 
+def _generated_by(doc: Mapping) -> list[str]:
+    entries = doc.get("GeneratedBy") if isinstance(doc, Mapping) else None
+    return [str(g.get("Name")) for g in entries or [] if isinstance(g, Mapping)]
+
+
+def check_description(out_dir: str | Path) -> None:
+    """Refuse an output folder whose dataset_description.json is not of a derivatives dataset
+    of ours (reads only; nothing is written, not even a lock file, into someone else's folder).
+
+    Raises
+    ------
+    InputError
+        The description is not valid JSON or its GeneratedBy names another pipeline.
+    """
+    target = Path(out_dir) / "dataset_description.json"
+    if not target.exists():
+        return
+    try:
+        names = _generated_by(json.loads(target.read_text(encoding="utf-8")))
+    except ValueError:
+        raise InputError(str(target), "not valid JSON: not a derivatives dataset of ours; "
+                                      "choose another output folder") from None
+    if PIPELINE_NAME not in names:
+        raise InputError(str(target), f"GeneratedBy names {', '.join(names) or 'no pipeline'}, "
+                                      f"not {PIPELINE_NAME}: the folder holds another pipeline's "
+                                      "derivatives; choose another output folder")
+
+
 def ensure_dataset(out_dir: str | Path, bids_dir: str | Path) -> Path:
-    """Create the derivatives folder with its dataset_description.json, or update it."""
+    """Create the derivatives folder with its dataset_description.json, or check it.
+
+    An existing description of ours that matches is left alone (concurrent runs into one
+    folder then never rewrite it); one of ours that differs (another version, the dataset
+    bound at another path) is rewritten. Hold the folder's lock while calling this.
+
+    Raises
+    ------
+    InputError
+        The folder's description is not ours (:func:`check_description`).
+    """
     out_dir = Path(out_dir)
     src_desc_path = Path(bids_dir) / "dataset_description.json"
     src_desc = json.loads(src_desc_path.read_text(encoding="utf-8")) if src_desc_path.exists() else {}
     target = out_dir / "dataset_description.json"
     text = json.dumps(dataset_description(bids_dir, src_desc), indent=2) + "\n"
-    if not target.exists() or target.read_text(encoding="utf-8") != text:
-        with OutputSet() as out:
-            out.reserve(target).write_text(text, encoding="utf-8")
+    if target.exists() and target.read_text(encoding="utf-8") == text:
+        return target
+    check_description(out_dir)
+    with OutputSet() as out:
+        out.reserve(target).write_text(text, encoding="utf-8")
     return target
 
 

@@ -8,6 +8,7 @@ from __future__ import annotations
 import json
 import os
 from collections.abc import Mapping
+from dataclasses import asdict
 from pathlib import Path
 
 import numpy as np
@@ -26,6 +27,7 @@ from .stats import fov_centre_ras_mm, image_flags
 __all__ = [
     "REPORTS_DIR",
     "image_report_name",
+    "read_index_record",
     "write_coil_page",
     "write_correction_report",
     "write_dataset_report",
@@ -299,8 +301,76 @@ def _fov_centre(path: str | Path):
     return fov_centre_ras_mm(img.shape[:3], img.affine)
 
 
+#: The index page's entries, machine-readable, beside it: runs into one output folder (one
+#: cluster job per participant) merge theirs into it, and the page is drawn from all of them.
+INDEX_RECORD = "index.json"
+INDEX_FORMAT = "nl_unwarp dataset index 1"
+
+
+def _plan_entries(output_dir: Path, plan) -> tuple[list[DatasetEntry], dict[str, str]]:
+    """The index entries of a plan's images (without page links), and the coil pages they use."""
+    from ..io.coilfile import coil_sha256
+
+    entries, coils = [], {}
+    for row in plan.rows:
+        decision = row.decision.as_record() if row.decision else None
+        prov = _provenance(output_dir, row.relpath)
+        summary = None
+        if prov is not None:
+            summary = {**prov["warp"], "coil_model": prov["coil_model"]}
+        coil_href = None
+        if row.decision is not None and Path(row.decision.coil_path).is_file():
+            sha = coil_sha256(row.decision.coil_path)
+            coil_href = coil_page_name(sha)
+            coils.setdefault(coil_href, row.decision.coil_path)
+        flags = (
+            []
+            if decision is None
+            else image_flags(summary=summary, decision=decision, fov_centre_ras_mm=_fov_centre(row.path))
+        )
+        entries.append(DatasetEntry(row.relpath, decision, summary, flags, None, coil_href, row.problem))
+    return entries, coils
+
+
+def _entry_record(entry: DatasetEntry) -> dict:
+    """An entry as JSON values (tuples become lists), without its page link (found at drawing)."""
+    record = json.loads(json.dumps(asdict(entry)))
+    record.pop("report_href")
+    return record
+
+
+def read_index_record(reports: Path) -> dict[str, dict]:
+    """The entries of ``reports/index.json`` by image path (empty if there is none).
+
+    Raises
+    ------
+    InputError
+        The file is not one of ours.
+    """
+    from ..errors import InputError
+
+    path = reports / INDEX_RECORD
+    if not path.exists():
+        return {}
+    try:
+        doc = json.loads(path.read_text(encoding="utf-8"))
+    except ValueError:
+        doc = None
+    if not isinstance(doc, dict) or doc.get("format") != INDEX_FORMAT or not isinstance(
+            doc.get("images"), list):
+        raise InputError(str(path), f"not an nl_unwarp index record (format {INDEX_FORMAT!r}); "
+                                    "move the file away")
+    return {record["relpath"]: record for record in doc["images"]}
+
+
 def write_dataset_report(output_dir: str | Path, plan) -> Path:
     """Write ``reports/index.html`` of a derivatives dataset and one page per coil model used.
+
+    The page lists this plan's images and those that earlier runs into the same folder
+    recorded in ``reports/index.json``: this plan's entries replace theirs, the others are
+    kept, all sorted by image path, so the page does not depend on the order of the runs.
+    Hold the folder's lock (:func:`nl_unwarp.io.lock.folder_lock`) around the call: it
+    reads, merges and writes.
 
     Parameters
     ----------
@@ -319,43 +389,25 @@ def write_dataset_report(output_dir: str | Path, plan) -> Path:
 
     output_dir = Path(output_dir)
     reports = output_dir / REPORTS_DIR
-    entries, coils = [], {}
-    for row in plan.rows:
-        decision = row.decision.as_record() if row.decision else None
-        prov = _provenance(output_dir, row.relpath)
-        summary = None
-        if prov is not None:
-            summary = {**prov["warp"], "coil_model": prov["coil_model"]}
-        coil_href = None
-        if row.decision is not None and Path(row.decision.coil_path).is_file():
-            sha = coil_sha256(row.decision.coil_path)
-            coil_href = coil_page_name(sha)
-            coils.setdefault(coil_href, row.decision.coil_path)
-        page_name = image_report_name(row.relpath)
-        flags = (
-            []
-            if decision is None
-            else image_flags(summary=summary, decision=decision, fov_centre_ras_mm=_fov_centre(row.path))
-        )
-        entries.append(
-            DatasetEntry(
-                row.relpath,
-                decision,
-                summary,
-                flags,
-                page_name if (reports / page_name).exists() else None,
-                coil_href,
-                row.problem,
-            )
-        )
+    entries, coils = _plan_entries(output_dir, plan)
+    records = read_index_record(reports)
+    records.update({e.relpath: _entry_record(e) for e in entries})
+    merged = []
+    for relpath in sorted(records):
+        page_name = image_report_name(relpath)
+        merged.append(DatasetEntry(**records[relpath],
+                                   report_href=page_name if (reports / page_name).exists() else None))
     with OutputSet() as out:
         for href, path in coils.items():
             out.reserve(reports / href).write_text(
                 render_coil_page(load_coil(path), coil_sha256(path)), encoding="utf-8"
             )
+        record = {"format": INDEX_FORMAT, "images": [records[k] for k in sorted(records)]}
+        out.reserve(reports / INDEX_RECORD).write_text(
+            json.dumps(record, indent=1, sort_keys=True) + "\n", encoding="utf-8")
         index = reports / INDEX_NAME
         out.reserve(index).write_text(
-            render_dataset_page(entries, title=Path(plan.bids_dir).name), encoding="utf-8"
+            render_dataset_page(merged, title=Path(plan.bids_dir).name), encoding="utf-8"
         )
     return index
 
