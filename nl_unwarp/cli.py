@@ -32,6 +32,9 @@ class _Progress:
         self.quiet = quiet
         self.start = time.perf_counter()
         self._last_nodes = 0.0
+        self._nodes_latest: tuple[int, int] | None = None  # last count reported
+        self._nodes_printed: tuple[int, int] | None = None  # last count printed
+        self._line_open = False  # a count is printed and its line not ended
 
     def step(self, message: str) -> None:
         if not self.quiet:
@@ -39,13 +42,26 @@ class _Progress:
 
     def nodes(self, done: int, total: int) -> None:
         """Workflow nodes finished, on one updating line (at most about once a second)."""
+        self._nodes_latest = (done, total)
         now = time.perf_counter()
         if done < total and now - self._last_nodes < 1.0:
             return
         self._last_nodes = now
+        self._print_nodes(done, total, end="\n" if done == total else "")
+
+    def _print_nodes(self, done: int, total: int, end: str) -> None:
+        self._nodes_printed, self._line_open = (done, total), not end
         if not self.quiet:
-            print(f"\r  {done}/{total} pipeline steps done", end="\n" if done == total else "",
-                  file=sys.stderr, flush=True)
+            print(f"\r  {done}/{total} pipeline steps done", end=end, file=sys.stderr, flush=True)
+
+    def end_nodes(self) -> None:
+        """The run is over: print the last count if it was not, and end its line. Steps that
+        crash (or depend on one that did) never finish, so the count may stop short of the total."""
+        latest = self._nodes_latest
+        if latest is not None and (self._line_open or self._nodes_printed != latest):
+            self._print_nodes(*latest, end="\n")
+        self._nodes_latest = self._nodes_printed = None
+        self._line_open = False
 
     def volumes(self, done: int, total: int) -> None:
         if total > 1 and not self.quiet:
@@ -306,8 +322,11 @@ def _cmd_demo(args, progress: _Progress) -> None:
     if not args.phantom_only:
         from .bids.demodata import run_bids_demo
 
-        rows = run_bids_demo(Path(args.outdir) / "bids_demo", n_procs=args.nprocs, step=progress.step,
-                             progress=progress.nodes)
+        try:
+            rows = run_bids_demo(Path(args.outdir) / "bids_demo", n_procs=args.nprocs,
+                                 step=progress.step, progress=progress.nodes)
+        finally:
+            progress.end_nodes()
         print("\nmulti-site BIDS pipeline: FICTIONAL sites, scanners and subjects")
         _print_run_rows(rows)
         print(f"derivatives in {Path(args.outdir) / 'bids_demo' / 'derivatives'}")
@@ -423,7 +442,10 @@ def _cmd_bids_app(args, progress: _Progress) -> None:
     progress.step(f"indexing {args.bids_dir} and deciding per image")
     plan = build_plan(options)
     progress.step(f"running {len(plan.rows)} image(s) with the {options.plugin} plugin")
-    rows, failures = run(options, plan=plan)
+    try:
+        rows, failures = run(options, plan=plan)
+    finally:
+        progress.end_nodes()
     _print_run_rows(rows)
     print(f"report           {Path(args.output_dir) / 'reports' / 'index.html'}")
     if failures:
