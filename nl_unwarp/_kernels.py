@@ -232,6 +232,13 @@ STEP_AFFINE, STEP_FIELD, STEP_FACTOR, STEP_FIELD_FACTOR, STEP_FIELD_NODES, STEP_
 TILE = 16
 
 
+@numba.njit(inline="always", cache=True)
+def _tile_line(tile, row, tiles_j):
+    """``(j, k)`` of line ``row`` of tile ``tile`` (tiles of TILE x TILE lines along x, ``tiles_j``
+    tiles across y)."""
+    return (tile % tiles_j) * TILE + row % TILE, (tile // tiles_j) * TILE + row // TILE
+
+
 @intrinsic
 def _as_pointer(typingctx, address):
     """An integer address as a void pointer (for :func:`numba.carray`)."""
@@ -439,8 +446,7 @@ def fold_chain(target_map, raw_map, raw_dims, use_raw, program, affines, address
     tj, tk = (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
     for tile in numba.prange(tj * tk):
         for row in range(TILE * TILE):
-            j = (tile % tj) * TILE + row % TILE
-            k = (tile // tj) * TILE + row // TILE
+            j, k = _tile_line(tile, row, tj)
             if j >= ny or k >= nz:
                 continue
             for i in range(nx):
@@ -465,8 +471,7 @@ def fold_chain_and_sample(coef, order, fill, target_map, raw_map, program, affin
     for tile in numba.prange(tj * tk):
         wx, wy, wz = np.empty(4), np.empty(4), np.empty(4)
         for row in range(TILE * TILE):
-            j = (tile % tj) * TILE + row % TILE
-            k = (tile // tj) * TILE + row // TILE
+            j, k = _tile_line(tile, row, tj)
             if j >= ny or k >= nz:
                 continue
             for i in range(nx):
@@ -546,8 +551,7 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
     for tile in numba.prange(tj * tk):
         wx, wy, wz = np.empty(4), np.empty(4), np.empty(4)
         for row in range(TILE * TILE):
-            j = (tile % tj) * TILE + row % TILE
-            k = (tile // tj) * TILE + row // TILE
+            j, k = _tile_line(tile, row, tj)
             if j >= ny or k >= nz:
                 continue
             for i in range(nx):

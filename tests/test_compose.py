@@ -181,6 +181,24 @@ def _raw_image(shape, seed):
             / 0.1).astype(np.float32)
 
 
+def _raw_for_sampling():
+    raw_shape = (22, 20, 19)
+    return _raw_image(raw_shape, 10), _oblique(raw_shape, (2.6, 2.8, 3.0), -5.0, (0.5, -0.5, 1.0))
+
+
+def _scipy_at_chain_points(chain, shape, aff, raw, raw_aff, order):
+    """Reference: scipy.ndimage.map_coordinates (mirror boundary, as ours) at the end points of
+    the plain-numpy chain, times its factor, FILL outside the raw image; also where the raw
+    image is, and the plain chain's misses."""
+    ref_pts, ref_factor, ref_missed = _reference(chain, _grid_points(shape, aff))
+    inv = np.linalg.inv(raw_aff)
+    idx = np.moveaxis(ref_pts @ inv[:3, :3].T + inv[:3, 3], -1, 0)
+    coef = ndimage.spline_filter(raw.astype(float), order=order, mode="mirror") if order > 1 else raw
+    expected = ndimage.map_coordinates(coef, idx, order=order, mode="mirror", prefilter=False) * ref_factor
+    inside = np.all((idx >= -0.5) & (idx <= np.array(raw.shape)[:, None, None, None] - 0.5), axis=0)
+    return np.where(inside, expected, FILL), inside, ref_missed
+
+
 @pytest.mark.parametrize("order", [0, 1, 2, 3])
 @pytest.mark.parametrize("layout", ["interpolated", "nodes", "own-grid factor"])
 def test_resample_chain_matches_scipy_at_the_chain_points(order, layout):
@@ -189,17 +207,9 @@ def test_resample_chain_matches_scipy_at_the_chain_points(order, layout):
     shape = (14, 15, 13)
     aff = _oblique(shape, (2.5, 3.0, 3.2), 20.0, (0, 0, 0))
     chain, _ = _layout_chain(layout, shape, aff)
-    raw_shape = (22, 20, 19)
-    raw_aff = _oblique(raw_shape, (2.6, 2.8, 3.0), -5.0, (0.5, -0.5, 1.0))
-    raw = _raw_image(raw_shape, 10)
+    raw, raw_aff = _raw_for_sampling()
     got = resample_chain(raw, raw_aff, chain, shape, aff, order=order, fill=FILL, on_outside="ignore")
-    ref_pts, ref_factor, _ = _reference(chain, _grid_points(shape, aff))
-    inv = np.linalg.inv(raw_aff)
-    idx = np.moveaxis(ref_pts @ inv[:3, :3].T + inv[:3, 3], -1, 0)
-    coef = ndimage.spline_filter(raw.astype(float), order=order, mode="mirror") if order > 1 else raw
-    expected = ndimage.map_coordinates(coef, idx, order=order, mode="mirror", prefilter=False) * ref_factor
-    inside = np.all((idx >= -0.5) & (idx <= np.array(raw_shape)[:, None, None, None] - 0.5), axis=0)
-    expected = np.where(inside, expected, FILL)
+    expected, inside, _ = _scipy_at_chain_points(chain, shape, aff, raw, raw_aff, order)
     assert 0.2 < inside.mean() < 1.0  # both the image and the fill are exercised
     # Nearest neighbour: a voxel whose point sits on a rounding boundary may differ.
     close = np.isclose(got.data, expected, rtol=0, atol=SAMPLE_ATOL)
@@ -255,17 +265,9 @@ def test_unrolled_chains_match_scipy_at_the_chain_points(order, shape_name):
     aff = _oblique(shape, (2.5, 3.0, 3.2), 20.0, (0, 0, 0))
     chain = _unrolled_chain(shape_name, shape, aff)
     assert _unrolled_arguments(chain, shape, aff) is not None  # the path under test
-    raw_shape = (22, 20, 19)
-    raw_aff = _oblique(raw_shape, (2.6, 2.8, 3.0), -5.0, (0.5, -0.5, 1.0))
-    raw = _raw_image(raw_shape, 10)
+    raw, raw_aff = _raw_for_sampling()
     got = resample_chain(raw, raw_aff, chain, shape, aff, order=order, fill=FILL, on_outside="ignore")
-    ref_pts, ref_factor, ref_missed = _reference(chain, _grid_points(shape, aff))
-    inv = np.linalg.inv(raw_aff)
-    idx = np.moveaxis(ref_pts @ inv[:3, :3].T + inv[:3, 3], -1, 0)
-    coef = ndimage.spline_filter(raw.astype(float), order=order, mode="mirror") if order > 1 else raw
-    expected = ndimage.map_coordinates(coef, idx, order=order, mode="mirror", prefilter=False) * ref_factor
-    inside = np.all((idx >= -0.5) & (idx <= np.array(raw_shape)[:, None, None, None] - 0.5), axis=0)
-    expected = np.where(inside, expected, FILL)
+    expected, inside, ref_missed = _scipy_at_chain_points(chain, shape, aff, raw, raw_aff, order)
     assert 0.2 < inside.mean() < 1.0
     close = np.isclose(got.data, expected, rtol=0, atol=SAMPLE_ATOL)
     assert close.mean() >= (NEAREST_AGREEMENT if order == 0 else 1.0)
