@@ -22,8 +22,8 @@ def folder_lock(folder: str | os.PathLike) -> Iterator[Path]:
     ``flock`` (Linux flock(2)) locks are held per open file, so two processes, or two
     threads that each open the file, exclude each other; the kernel drops the lock when the
     holder exits, even if it is killed. On NFS, Linux implements ``flock`` with byte-range
-    locks that the server sees (flock(2), "NFS details"); Lustre needs the ``flock`` mount
-    option.
+    locks that the server sees (flock(2), "NFS details"; from memory, not tested here);
+    Lustre needs the ``flock`` mount option (from memory).
     """
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
