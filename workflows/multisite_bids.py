@@ -65,10 +65,12 @@ def main(argv=None) -> int:
         parser.error("give BIDS_DIR OUTPUT_DIR --site-config, or --demo FOLDER")
     from nl_unwarp.bids.app import summary_rows
     from nl_unwarp.bids.derivatives import ensure_dataset
+    from nl_unwarp.io.lock import folder_lock
 
     work_dir = args.work_dir or args.output_dir.parent / "nl_unwarp_work"
     plan, workflow = build(args.bids_dir, args.output_dir, args.site_config, work_dir)
-    ensure_dataset(args.output_dir, args.bids_dir)
+    with folder_lock(args.output_dir):  # other runs may share the output folder
+        ensure_dataset(args.output_dir, args.bids_dir)
     workflow.run(plugin=args.plugin, plugin_args=json.loads(args.plugin_args))
     for row in summary_rows(plan, args.output_dir):
         disp = "-" if row["displacement_max_mm"] is None else f"{row['displacement_max_mm']:.3f} mm"
