@@ -82,12 +82,9 @@ def _volume_rms(fit, frame: DeviceFrame, radius_mm: float, rng, count: int = 400
 def _one_blas_thread():
     """One BLAS thread, as ``fit phantom`` runs the fit: on the shared machine threaded
     SVDs of these ~1500 x 200 matrices were up to 200 times slower (bench_phantom_fit)."""
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover
-        yield
-        return
-    with threadpool_limits(limits=1, user_api="blas"):
+    from nl_unwarp.interfaces._utils import one_blas_thread
+
+    with one_blas_thread():
         yield
 
 

@@ -24,7 +24,7 @@ from nipype.interfaces.base import (
 )
 
 from ..frames import PATIENT_POSITIONS
-from ._utils import optional
+from ._utils import one_blas_thread, optional
 
 __all__ = ["FIT_PAGE_NAME", "FitFieldSamples", "fit_field_sample_files"]
 
@@ -32,21 +32,6 @@ __all__ = ["FIT_PAGE_NAME", "FitFieldSamples", "fit_field_sample_files"]
 FIT_PAGE_NAME = "coil-fit.html"
 CAUTION = ("For research pipelines only: not for diagnosis. A fitted coil model does not replace "
            "the scanner's QA; defer to local scanner QA and licensed practice.")
-
-
-def _one_blas_thread():
-    """One BLAS thread for the fit, when threadpoolctl is installed.
-
-    On the idle 2-core machine one thread was as fast as two for the 20,000 x 324 QR; on a
-    loaded one threaded BLAS was measured up to 8 times slower (``benchmarks/bench_fit.py``).
-    """
-    import contextlib
-
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover - optional
-        return contextlib.nullcontext()
-    return threadpool_limits(limits=1, user_api="blas")
 
 
 def _gradients(gradient_mT_per_m) -> dict:
@@ -145,7 +130,7 @@ def fit_field_sample_files(
                for a, s in loaded.items()}
     date = date or datetime.datetime.now(datetime.timezone.utc).date().isoformat()
     try:
-        with _one_blas_thread():
+        with one_blas_thread():
             model, summary = fit_samples(
                 samples, degree=degree, max_degree=max_degree or DEFAULT_MAX_DEGREE, symmetry=symmetry,
                 reference_radius_mm=reference_radius_mm, valid_radius_mm=valid_radius_mm, label=label,

@@ -23,7 +23,7 @@ from nipype.interfaces.base import (
     traits,
 )
 
-from ._utils import optional
+from ._utils import one_blas_thread, optional
 
 __all__ = ["FitPhantom", "fit_phantom_files"]
 
@@ -35,22 +35,6 @@ REPORT_PAGE = "phantom_fit.html"
 #: flagging more than this fraction as outliers, is warned about.
 MATCHED_WARN_FRACTION = 0.8
 OUTLIER_WARN_FRACTION = 0.05
-
-
-def _blas_single_thread():
-    """One BLAS thread for the fit's small dense solves, when threadpoolctl is installed.
-
-    The fit's matrices are ~1500 x 200: one thread is as fast as two on an idle
-    machine, and on a loaded one threaded BLAS was measured 10-200 times slower
-    (``benchmarks/bench_phantom_fit.py``).
-    """
-    import contextlib
-
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover - optional
-        return contextlib.nullcontext()
-    return threadpool_limits(limits=1, user_api="blas")
 
 
 def _scan_frames(images: Sequence, position: str, table_positions, isocenter_offsets):
@@ -198,7 +182,7 @@ def fit_phantom_files(
     say(f"fitting pose and coil terms to degree {degree} ({sum(len(s.marker_index) for s in scans)} "
         f"markers, {len(scans)} scan(s))")
     try:
-        with _blas_single_thread():
+        with one_blas_thread():
             fit = fit_phantom(scans, degree=degree, symmetry=symmetry,
                               fit_isocenter_offset=fit_isocenter_offset, loss=loss or DEFAULT_LOSS,
                               loss_scale_mm=loss_scale_mm,
