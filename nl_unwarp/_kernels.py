@@ -492,32 +492,32 @@ def _blend(v, o, di, dj, dk, ti, tj, tk):
 
 
 @numba.njit(inline="always", cache=True)
-def _cell(nx, ny, nz, gi, gj, gk):
-    """Flat offset of a cell's first corner, the steps to the others (zero where a corner is
-    clamped to the grid's edge, as :func:`_clamp` does) and the fractions, for a continuous
-    index ``>= -1``."""
-    bi, ti = _floor(gi)
-    bj, tj = _floor(gj)
-    bk, tk = _floor(gk)
+def _cell(nx, ny, nz, bi, bj, bk):
+    """Flat offset of the first corner of the cell at integer index ``(bi, bj, bk)`` and the
+    steps to the others: zero where a corner is clamped to the grid's edge, as :func:`_clamp`
+    does."""
     plane = nx * ny
     if 0 <= bi < nx - 1 and 0 <= bj < ny - 1 and 0 <= bk < nz - 1:
-        return bi + nx * bj + plane * bk, 1, nx, plane, ti, tj, tk
+        return bi + nx * bj + plane * bk, 1, nx, plane
     i0, j0, k0 = _clamp(bi, nx), _clamp(bj, ny), _clamp(bk, nz)
     di, dj, dk = _clamp(bi + 1, nx) - i0, (_clamp(bj + 1, ny) - j0) * nx, (_clamp(bk + 1, nz) - k0) * plane
-    return i0 + nx * j0 + plane * k0, di, dj, dk, ti, tj, tk
+    return i0 + nx * j0 + plane * k0, di, dj, dk
 
 
 @numba.njit(parallel=True, cache=True)
 def field_affine_field_sample(coef, order, fill, target_map, first, first_offset, use_first, matrix,
-                              last, last_dims, last_jac, last_map, use_last, use_jac, raw_map, out, missed):
+                              last, last_dims, last_map, use_last, jac, jac_dims, jac_offset, use_jac,
+                              raw_map, out, missed):
     """:func:`fold_chain_and_sample` for the chain shape ``[W, A, G (x J)]``, unrolled.
 
     ``W`` (optional) is a field on the target lattice, read at its nodes
     (``first[i + o]``, the ``STEP_FIELD_NODES`` rule); ``A`` is one pull
     matrix (the product of the chain's consecutive affines; identity if
     none); ``G`` (optional) a field read trilinearly (ITK's rule, identity and
-    a flagged miss outside ``[-0.5, n - 0.5]``), with its own-grid factor map
-    ``last_jac`` sharing its weights (held at edge values outside). The
+    a flagged miss outside ``[-0.5, n - 0.5]``), with a factor map ``J`` on
+    its lattice (its own grid, or e.g. the raw grid inside the grown one)
+    sharing its weights, held at edge values beyond ``J``'s grid (the
+    ``STEP_FIELD_FACTOR`` rule). The
     arithmetic is that of the generic kernel, step for step; the chain's
     parameters are plain arguments rather than rows of a program, and ``G``
     is read from flat buffers through one offset per cell
@@ -535,16 +535,19 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
         ``G``'s displacement, RAS mm, flat: x fastest, components slowest (read if ``use_last``).
     last_dims : (3,) int64 ndarray
         ``G``'s grid shape.
-    last_jac : (X' Y' Z',) float32 ndarray
-        ``G``'s factor map, flat, x fastest (read if ``use_jac``).
     last_map : (3, 4) float64 ndarray
         World RAS mm -> ``G``'s voxel index.
+    jac : (X'' Y'' Z'',) float32 ndarray
+        The factor map ``J``, flat, x fastest (read if ``use_jac``).
+    jac_dims, jac_offset : (3,) int64 ndarray
+        ``J``'s grid shape, and its voxel index of ``G``'s voxel (0, 0, 0).
 
     Other parameters as for :func:`fold_chain_and_sample`.
     """
     nx, ny, nz = out.shape
     fx, fy, fz = first.shape[0], first.shape[1], first.shape[2]
     gx, gy, gz = last_dims[0], last_dims[1], last_dims[2]
+    jx, jy, jz = jac_dims[0], jac_dims[1], jac_dims[2]
     vol = gx * gy * gz
     rx, ry, rz = coef.shape
     tj, tk = (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
@@ -570,18 +573,24 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
                 if use_last:
                     gi, gj, gk = _point(last_map, x, y, z)
                     if -0.5 <= gi <= gx - 0.5 and -0.5 <= gj <= gy - 0.5 and -0.5 <= gk <= gz - 0.5:
-                        o, di, dj, dk, ti, tj_, tk_ = _cell(gx, gy, gz, gi, gj, gk)
+                        bi, ti = _floor(gi)
+                        bj, tj_ = _floor(gj)
+                        bk, tk_ = _floor(gk)
+                        o, di, dj, dk = _cell(gx, gy, gz, bi, bj, bk)
                         dx = _blend(last, o, di, dj, dk, ti, tj_, tk_)
                         dy = _blend(last, o + vol, di, dj, dk, ti, tj_, tk_)
                         dz = _blend(last, o + 2 * vol, di, dj, dk, ti, tj_, tk_)
                         if use_jac:
-                            f = _blend(last_jac, o, di, dj, dk, ti, tj_, tk_)
+                            o, di, dj, dk = _cell(jx, jy, jz, bi + jac_offset[0], bj + jac_offset[1],
+                                                  bk + jac_offset[2])
+                            f = _blend(jac, o, di, dj, dk, ti, tj_, tk_)
                         x += dx
                         y += dy
                         z += dz
                     else:
                         if use_jac:
-                            f = _factor_at(last_jac, gx, gy, gz, gi, gj, gk)
+                            f = _factor_at(jac, jx, jy, jz, gi + jac_offset[0], gj + jac_offset[1],
+                                           gk + jac_offset[2])
                         miss = True
                 ri, rj, rk = _point(raw_map, x, y, z)
                 if _inside(ri, rx) and _inside(rj, ry) and _inside(rk, rz):

@@ -409,12 +409,14 @@ _NO_FACTOR = np.ones((1, 1, 1), np.float32, order="F")
 def _unrolled_arguments(steps: Sequence[Step], target_shape, target_affine: np.ndarray) -> tuple | None:
     """Arguments of :func:`nl_unwarp._kernels.field_affine_field_sample` if the chain has its shape.
 
-    The shape is ``[W, A..., G]``, each part optional: ``W`` a field on the
-    target lattice (read at its nodes), any run of affines (multiplied into
-    one matrix), ``G`` a field anywhere with or without its own Jacobian map.
-    This covers the correction alone, motion then correction, and
-    registration then correction. Other chains (factor maps of their own,
-    fields elsewhere) return None and take the generic program.
+    The shape is ``[W, A..., (J,) G]``, each part optional: ``W`` a field on the
+    target lattice (read at its nodes), any run of affines (multiplied into one
+    matrix), ``G`` a field anywhere with its Jacobian map, given with it or as a
+    factor step just before it on its lattice (our raw-grid Jacobian before the
+    field on the grown grid, as ``compose --jacobian-map`` builds the chain).
+    This covers the correction alone, motion then correction, and registration
+    then correction. Other chains (other factor maps, fields elsewhere) return
+    None and take the generic program.
     """
     rest = list(steps)
     first, offset = _NO_FIELD, np.zeros(3, np.int64)
@@ -426,7 +428,15 @@ def _unrolled_arguments(steps: Sequence[Step], target_shape, target_affine: np.n
     matrix = np.eye(4)
     while rest and isinstance(rest[0], AffineStep):
         matrix = rest.pop(0).matrix_ras @ matrix
-    last, jac, last_map = _NO_FIELD, _NO_FACTOR, np.zeros((3, 4))
+    last, last_map = _NO_FIELD, np.zeros((3, 4))
+    jac, jac_offset = _NO_FACTOR, np.zeros(3, np.int64)
+    if len(rest) == 2 and isinstance(rest[0], FactorStep) and isinstance(rest[1], FieldStep) \
+            and rest[1].jacobian is None:
+        factor, g = rest
+        jac_offset = _lattice_offset((np.linalg.inv(factor.affine) @ g.affine)[:3], g.shape)
+        if jac_offset is None:
+            return None
+        jac, rest = factor.values, [g]
     if rest and isinstance(rest[0], FieldStep):
         g = rest.pop(0)
         last, last_map = g.disp_ras_mm, _world_to_index(g.affine)
@@ -436,8 +446,8 @@ def _unrolled_arguments(steps: Sequence[Step], target_shape, target_affine: np.n
         return None
     # Flat views (no copies: the arrays are x fastest) that the kernel reads through cell offsets.
     return (first, offset, first is not _NO_FIELD, np.ascontiguousarray(matrix[:3]),
-            last.reshape(-1, order="F"), np.array(last.shape[:3], np.int64), jac.reshape(-1, order="F"),
-            last_map, last is not _NO_FIELD, jac is not _NO_FACTOR)
+            last.reshape(-1, order="F"), np.array(last.shape[:3], np.int64), last_map, last is not _NO_FIELD,
+            jac.reshape(-1, order="F"), np.array(jac.shape, np.int64), jac_offset, jac is not _NO_FACTOR)
 
 
 def _check_on_outside(on_outside: str) -> None:

@@ -244,14 +244,19 @@ def _unrolled_chain(shape_name, target_shape, target_affine):
                         target_affine)
     w_larger = FieldStep(np.random.default_rng(13).normal(0.0, 2.0, (15, 17, 14, 3)),
                          _shifted(target_affine, (-1, -2, 0)))  # a grown target grid, read at nodes
+    g_bare = FieldStep(g.disp_ras_mm, g.affine)
+    # A smaller factor map on G's lattice (our raw-grid Jacobian inside the grown field's grid).
+    lattice_factor = FactorStep(np.random.default_rng(14).uniform(0.8, 1.2, (14, 15, 12)),
+                                _shifted(g.affine, (3, 4, 2)))
     return {"W, A, A, G+J": [w_nodes, a, _affine(4), g],
-            "W (grown), A, G": [w_larger, a, FieldStep(g.disp_ras_mm, g.affine)],
+            "W (grown), A, G": [w_larger, a, g_bare],
             "A, G+J": [a, g],
             "G+J": [g],
-            "W, A": [w_nodes, a]}[shape_name]
+            "W, A": [w_nodes, a],
+            "W, A, J on G's lattice, G": [w_nodes, a, lattice_factor, g_bare]}[shape_name]
 
 
-UNROLLED = ["W, A, A, G+J", "W (grown), A, G", "A, G+J", "G+J", "W, A"]
+UNROLLED = ["W, A, A, G+J", "W (grown), A, G", "A, G+J", "G+J", "W, A", "W, A, J on G's lattice, G"]
 
 
 @pytest.mark.parametrize("order", [0, 1, 3])
@@ -285,8 +290,10 @@ def test_other_chain_shapes_take_the_generic_program():
     shape = (14, 15, 13)
     aff = _oblique(shape, (2.5, 3.0, 3.2), 20.0, (0, 0, 0))
     w, a, g = _chain()  # w is not on the target lattice
-    factor = FactorStep(np.ones((4, 4, 4)), aff)
-    for chain in ([w, a, g], [a, g, a], [factor, g], [g, g], [a, FieldStep(g.disp_ras_mm, g.affine), factor]):
+    factor = FactorStep(np.ones((4, 4, 4)), aff)  # on the target grid, not on g's lattice
+    g_bare = FieldStep(g.disp_ras_mm, g.affine)
+    for chain in ([w, a, g], [a, g, a], [factor, g], [factor, g_bare], [g, g],
+                  [a, g_bare, factor]):
         assert _unrolled_arguments(chain, shape, aff) is None
 
 
