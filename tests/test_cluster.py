@@ -94,13 +94,31 @@ def test_slurm_plugin_run_equals_multiproc_run(study, tmp_path):
         _cancel_jobs(comment)
     assert slurm.returncode == 0, slurm.stderr
 
-    # The nodes ran as Slurm jobs, with the -o we passed: one log per job, each a node's run.
+    # The nodes ran as Slurm jobs, with the -o we passed: one log of ours per batch script
+    # nipype submitted (what the jobs print depends on nipype's log level, so the count is
+    # the check, not the content).
     job_logs = sorted(logs.glob("nlu-*.out"))
+    scripts = sorted((tmp_path / "work_slurm").rglob("batchscript_*.sh"))
     assert len(job_logs) >= 2 * IMAGES  # at least make_warp and apply_warp per image
-    assert all("[Node] Finished" in p.read_text() for p in job_logs)
+    assert len(job_logs) == len(scripts)
 
     assert len(derivative_images(tmp_path / "deriv_slurm")) >= 3 * IMAGES
     assert tree_differences(tmp_path / "deriv_multiproc", tmp_path / "deriv_slurm") == []
+
+
+def test_worker_config_is_set_for_the_run_only(tmp_path, monkeypatch):
+    """The worker settings reach nipype's worker and batch-job processes through the
+    environment during a run, and the caller's environment is restored after it (a leaked
+    value gave later runs in the same process this run's log levels)."""
+    monkeypatch.setenv("NIPYPE_CONFIG_DIR", str(tmp_path / "callers"))
+    with app._worker_config(tmp_path / "work") as folder:
+        assert os.environ["NIPYPE_CONFIG_DIR"] == str(folder)
+        assert "workflow_level = WARNING" in (folder / "nipype.cfg").read_text()
+    assert os.environ["NIPYPE_CONFIG_DIR"] == str(tmp_path / "callers")
+    monkeypatch.delenv("NIPYPE_CONFIG_DIR")
+    with app._worker_config(tmp_path / "work"):
+        pass
+    assert "NIPYPE_CONFIG_DIR" not in os.environ
 
 
 # The login name nipype's batch plugins need (no cluster required).

@@ -173,14 +173,28 @@ def _set_login_name() -> None:
     os.environ["LOGNAME"] = name
 
 
-def _worker_config(work_dir: Path) -> None:
-    """nipype settings for worker processes, which read them at import (not from this process)."""
+@contextmanager
+def _worker_config(work_dir: Path):
+    """nipype settings for worker processes, which read them at import (not from this process).
+
+    ``NIPYPE_CONFIG_DIR`` is set for the run only and restored after it: a caller that runs
+    the app in its own process (a test, a notebook) keeps its environment, and the nipype
+    processes it starts later do not inherit this run's settings.
+    """
     folder = work_dir / "nipype_config"
     folder.mkdir(parents=True, exist_ok=True)
     (folder / "nipype.cfg").write_text(
         "[logging]\nworkflow_level = WARNING\ninterface_level = WARNING\nutils_level = WARNING\n"
         "[execution]\nhash_method = content\ncrashfile_format = txt\n", encoding="utf-8")
+    before = os.environ.get("NIPYPE_CONFIG_DIR")
     os.environ["NIPYPE_CONFIG_DIR"] = str(folder)
+    try:
+        yield folder
+    finally:
+        if before is None:
+            os.environ.pop("NIPYPE_CONFIG_DIR", None)
+        else:
+            os.environ["NIPYPE_CONFIG_DIR"] = before
 
 
 def summary_rows(plan: Plan, output_dir: Path) -> list[dict]:
@@ -292,7 +306,6 @@ def run(options: RunOptions, *, plan: Plan | None = None) -> tuple[list[dict], l
             log.warning("removed %s, left by an interrupted run", stale)
     _set_threads(options.omp_nthreads)
     _set_login_name()
-    _worker_config(work_dir)
     workflow = init_bids_unwarp_wf(plan=plan, output_dir=output_dir, site_config=options.site_config,
                                    coil_override=options.coil_override, jacobian=options.jacobian,
                                    order=options.order,
@@ -311,7 +324,7 @@ def run(options: RunOptions, *, plan: Plan | None = None) -> tuple[list[dict], l
     if workflow.list_node_names():
         before = set(crash_dir.glob("crash-*")) if crash_dir.exists() else set()
         try:
-            with _frozen_heap():
+            with _worker_config(work_dir), _frozen_heap():
                 workflow.run(plugin=options.plugin,
                              plugin_args=_plugin_args(options, runnable_node_count(workflow)))
         except RuntimeError:
