@@ -548,6 +548,9 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
     fx, fy, fz = first.shape[0], first.shape[1], first.shape[2]
     gx, gy, gz = last_dims[0], last_dims[1], last_dims[2]
     jx, jy, jz = jac_dims[0], jac_dims[1], jac_dims[2]
+    ox, oy, oz = jac_offset[0], jac_offset[1], jac_offset[2]
+    # J on G's own grid (a FieldStep's jacobian) reads the same cells.
+    same_cells = jx == gx and jy == gy and jz == gz and ox == 0 and oy == 0 and oz == 0
     vol = gx * gy * gz
     rx, ry, rz = coef.shape
     tj, tk = (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
@@ -581,16 +584,15 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
                         dy = _blend(last, o + vol, di, dj, dk, ti, tj_, tk_)
                         dz = _blend(last, o + 2 * vol, di, dj, dk, ti, tj_, tk_)
                         if use_jac:
-                            o, di, dj, dk = _cell(jx, jy, jz, bi + jac_offset[0], bj + jac_offset[1],
-                                                  bk + jac_offset[2])
+                            if not same_cells:
+                                o, di, dj, dk = _cell(jx, jy, jz, bi + ox, bj + oy, bk + oz)
                             f = _blend(jac, o, di, dj, dk, ti, tj_, tk_)
                         x += dx
                         y += dy
                         z += dz
                     else:
                         if use_jac:
-                            f = _factor_at(jac, jx, jy, jz, gi + jac_offset[0], gj + jac_offset[1],
-                                           gk + jac_offset[2])
+                            f = _factor_at(jac, jx, jy, jz, gi + ox, gj + oy, gk + oz)
                         miss = True
                 ri, rj, rk = _point(raw_map, x, y, z)
                 if _inside(ri, rx) and _inside(rj, ry) and _inside(rk, rz):
