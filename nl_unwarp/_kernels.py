@@ -286,17 +286,28 @@ def _floor(g):
 
 
 @numba.njit(inline="always", cache=True)
-def _lerp(v, base, nx, plane, i0, i1, j0, j1, k0, k1, ti, tj, tk):
-    """Trilinear blend of ``v[base + i + nx j + plane k]`` over the eight corners."""
-    r00, r10 = base + nx * j0 + plane * k0, base + nx * j1 + plane * k0
-    r01, r11 = base + nx * j0 + plane * k1, base + nx * j1 + plane * k1
-    a00 = v[r00 + i0] + ti * (v[r00 + i1] - v[r00 + i0])
-    a10 = v[r10 + i0] + ti * (v[r10 + i1] - v[r10 + i0])
-    a01 = v[r01 + i0] + ti * (v[r01 + i1] - v[r01 + i0])
-    a11 = v[r11 + i0] + ti * (v[r11 + i1] - v[r11 + i0])
+def _blend(v, o, di, dj, dk, ti, tj, tk):
+    """Trilinear blend of a flat buffer over the corners ``o + {0, di} + {0, dj} + {0, dk}``."""
+    a00 = v[o] + ti * (v[o + di] - v[o])
+    a10 = v[o + dj] + ti * (v[o + dj + di] - v[o + dj])
+    a01 = v[o + dk] + ti * (v[o + dk + di] - v[o + dk])
+    a11 = v[o + dk + dj] + ti * (v[o + dk + dj + di] - v[o + dk + dj])
     b0 = a00 + tj * (a10 - a00)
     b1 = a01 + tj * (a11 - a01)
     return b0 + tk * (b1 - b0)
+
+
+@numba.njit(inline="always", cache=True)
+def _cell(nx, ny, nz, bi, bj, bk):
+    """Flat offset of the first corner of the cell at integer index ``(bi, bj, bk)`` and the
+    steps to the others: zero where a corner is clamped to the grid's edge, as :func:`_clamp`
+    does."""
+    plane = nx * ny
+    if 0 <= bi < nx - 1 and 0 <= bj < ny - 1 and 0 <= bk < nz - 1:
+        return bi + nx * bj + plane * bk, 1, nx, plane
+    i0, j0, k0 = _clamp(bi, nx), _clamp(bj, ny), _clamp(bk, nz)
+    di, dj, dk = _clamp(bi + 1, nx) - i0, (_clamp(bj + 1, ny) - j0) * nx, (_clamp(bk + 1, nz) - k0) * plane
+    return i0 + nx * j0 + plane * k0, di, dj, dk
 
 
 @numba.njit(inline="always", cache=True)
@@ -307,8 +318,8 @@ def _factor_at(v, nx, ny, nz, gi, gj, gk):
     bi, ti = _floor(min(max(gi, -1.0), float(nx)))
     bj, tj = _floor(min(max(gj, -1.0), float(ny)))
     bk, tk = _floor(min(max(gk, -1.0), float(nz)))
-    return _lerp(v, 0, nx, nx * ny, _clamp(bi, nx), _clamp(bi + 1, nx), _clamp(bj, ny), _clamp(bj + 1, ny),
-                 _clamp(bk, nz), _clamp(bk + 1, nz), ti, tj, tk)
+    o, di, dj, dk = _cell(nx, ny, nz, bi, bj, bk)
+    return _blend(v, o, di, dj, dk, ti, tj, tk)
 
 
 @numba.njit(inline="always", cache=True)
@@ -361,18 +372,16 @@ def _follow(i, j, k, x, y, z, program, affines, addresses, sizes, dims, maps):
         bi, ti = _floor(gi)
         bj, tj = _floor(gj)
         bk, tk = _floor(gk)
-        i0, i1, j0, j1 = _clamp(bi, nx), _clamp(bi + 1, nx), _clamp(bj, ny), _clamp(bj + 1, ny)
-        k0, k1 = _clamp(bk, nz), _clamp(bk + 1, nz)
+        o, di, dj, dk = _cell(nx, ny, nz, bi, bj, bk)
         vol = plane * nz
-        dx = _lerp(v, 0, nx, plane, i0, i1, j0, j1, k0, k1, ti, tj, tk)
-        dy = _lerp(v, vol, nx, plane, i0, i1, j0, j1, k0, k1, ti, tj, tk)
-        dz = _lerp(v, 2 * vol, nx, plane, i0, i1, j0, j1, k0, k1, ti, tj, tk)
+        dx = _blend(v, o, di, dj, dk, ti, tj, tk)
+        dy = _blend(v, o + vol, di, dj, dk, ti, tj, tk)
+        dz = _blend(v, o + 2 * vol, di, dj, dk, ti, tj, tk)
         if kind == STEP_FIELD_FACTOR:
             b = program[s, 2]
-            mx, my, mz = dims[b, 0], dims[b, 1], dims[b, 2]
-            bi, bj, bk = bi + program[s, 3], bj + program[s, 4], bk + program[s, 5]
-            f *= _lerp(_buffer(addresses, sizes, b), 0, mx, mx * my, _clamp(bi, mx), _clamp(bi + 1, mx),
-                       _clamp(bj, my), _clamp(bj + 1, my), _clamp(bk, mz), _clamp(bk + 1, mz), ti, tj, tk)
+            o, di, dj, dk = _cell(dims[b, 0], dims[b, 1], dims[b, 2], bi + program[s, 3], bj + program[s, 4],
+                                  bk + program[s, 5])
+            f *= _blend(_buffer(addresses, sizes, b), o, di, dj, dk, ti, tj, tk)
         x += dx
         y += dy
         z += dz
@@ -477,31 +486,6 @@ def fold_chain_and_sample(coef, order, fill, target_map, raw_map, program, affin
             for i in range(nx):
                 _sample_voxel(i, j, k, coef, order, fill, target_map, raw_map, program, affines, addresses,
                               sizes, dims, maps, out, missed, wx, wy, wz)
-
-
-@numba.njit(inline="always", cache=True)
-def _blend(v, o, di, dj, dk, ti, tj, tk):
-    """Trilinear blend of a flat buffer over the corners ``o + {0, di} + {0, dj} + {0, dk}``."""
-    a00 = v[o] + ti * (v[o + di] - v[o])
-    a10 = v[o + dj] + ti * (v[o + dj + di] - v[o + dj])
-    a01 = v[o + dk] + ti * (v[o + dk + di] - v[o + dk])
-    a11 = v[o + dk + dj] + ti * (v[o + dk + dj + di] - v[o + dk + dj])
-    b0 = a00 + tj * (a10 - a00)
-    b1 = a01 + tj * (a11 - a01)
-    return b0 + tk * (b1 - b0)
-
-
-@numba.njit(inline="always", cache=True)
-def _cell(nx, ny, nz, bi, bj, bk):
-    """Flat offset of the first corner of the cell at integer index ``(bi, bj, bk)`` and the
-    steps to the others: zero where a corner is clamped to the grid's edge, as :func:`_clamp`
-    does."""
-    plane = nx * ny
-    if 0 <= bi < nx - 1 and 0 <= bj < ny - 1 and 0 <= bk < nz - 1:
-        return bi + nx * bj + plane * bk, 1, nx, plane
-    i0, j0, k0 = _clamp(bi, nx), _clamp(bj, ny), _clamp(bk, nz)
-    di, dj, dk = _clamp(bi + 1, nx) - i0, (_clamp(bj + 1, ny) - j0) * nx, (_clamp(bk + 1, nz) - k0) * plane
-    return i0 + nx * j0 + plane * k0, di, dj, dk
 
 
 @numba.njit(parallel=True, cache=True)
