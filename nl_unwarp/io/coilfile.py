@@ -20,6 +20,7 @@ from ..coil import AXES, LINEAR_TERMS, AxisExpansion, CoilModel
 from ..errors import InputError
 from ..harmonics import NORMALISATIONS, Basis, basis_factor
 from .atomic import atomic_path
+from .text import read_input_text
 
 __all__ = [
     "FORMAT_NAME",
@@ -321,12 +322,7 @@ def import_table(
         Validated exactly as :func:`load_coil` validates a file.
     """
     src = str(path)
-    try:
-        text = Path(path).read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise InputError(src, "table file not found") from None
-    except UnicodeDecodeError:
-        raise InputError(src, "table is not UTF-8 text") from None
+    text = read_input_text(path, "table file")
     lines = text.splitlines()
     wanted = ["axis", "degree", "order", "kind", "value"]
     if not lines:

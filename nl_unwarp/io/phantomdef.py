@@ -18,6 +18,7 @@ from scipy.spatial import cKDTree
 
 from ..errors import InputError
 from .atomic import OutputSet
+from .text import read_input_text
 
 __all__ = [
     "FORMAT_NAME",
@@ -195,14 +196,7 @@ def load_phantom_definition(path: str | Path) -> PhantomDefinition:
         Naming the file and the field of the first problem found.
     """
     src = str(path)
-    try:
-        text = Path(path).read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise InputError(src, "phantom definition file not found") from None
-    except IsADirectoryError:
-        raise InputError(src, "phantom definition is a folder, not a file") from None
-    except UnicodeDecodeError:
-        raise InputError(src, "phantom definition is not UTF-8 text") from None
+    text = read_input_text(path, "phantom definition file")
 
     def constant(name):
         raise InputError(src, f"{name} is not a number (RFC 8259); write finite values")

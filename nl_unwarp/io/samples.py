@@ -40,6 +40,7 @@ import numpy as np
 
 from ..errors import InputError
 from ..frames import PATIENT_POSITIONS, DeviceFrame, offset_from_table_position
+from .text import read_input_text
 
 __all__ = ["COLUMNS", "FieldSamples", "load_field_samples", "write_field_samples"]
 
@@ -90,12 +91,7 @@ def _positive_gradient(text: str, src: str, where: str) -> float:
 
 def _read_table(path: Path, axis: str | None) -> FieldSamples:
     src = str(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise InputError(src, "field sample file not found") from None
-    except UnicodeDecodeError:
-        raise InputError(src, "field sample table is not UTF-8 text") from None
+    text = read_input_text(path, "field sample file")
     gradient, header, rows = None, None, []
     for line_no, raw in enumerate(text.splitlines(), start=1):
         line = raw.strip()
