@@ -31,11 +31,11 @@ import nibabel as nib
 import numpy as np
 import pytest
 import SimpleITK as sitk
+from clirun import run_main as _run
 from scipy import ndimage
 from scipy.special import lpmv
 
 from nl_unwarp.api import displacement_table
-from nl_unwarp.cli import main
 from nl_unwarp.demo import demo_coil_path
 from nl_unwarp.io.coilfile import load_coil
 
@@ -126,16 +126,6 @@ def _save(path: Path, data: np.ndarray, affine: np.ndarray, *, codes=(1, 1)) -> 
 def _smooth(rng, shape, mean=1000.0, spread=300.0) -> np.ndarray:
     vol = ndimage.gaussian_filter(rng.normal(size=shape), 1.5, mode="wrap")
     return mean + spread * vol / np.abs(vol).max()
-
-
-def _run(argv, capsys) -> tuple[int, str, str]:
-    """``main(argv)`` in-process; argparse's SystemExit becomes the code."""
-    try:
-        code = main([str(a) for a in argv])
-    except SystemExit as exc:
-        code = exc.code
-    captured = capsys.readouterr()
-    return code, captured.out, captured.err
 
 
 def _entries(folder: Path) -> list[str]:

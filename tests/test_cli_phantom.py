@@ -16,10 +16,10 @@ from pathlib import Path
 import nibabel as nib
 import numpy as np
 import pytest
+from clirun import run_main as _run
 from phantomscan import ball_points, lattice_phantom, simulate_scan, true_displacement_mm
 from scipy.spatial.transform import Rotation
 
-from nl_unwarp.cli import main
 from nl_unwarp.frames import DeviceFrame, offset_from_table_position
 from nl_unwarp.interfaces.phantom import FitPhantom
 from nl_unwarp.io.coilfile import load_coil
@@ -39,15 +39,6 @@ TRANSLATION_RAS_MM = np.array([4.0, -6.0, 8.0])
 TABLE_POSITIONS = ((0.0, 0.0, 0.0), (0.0, 0.0, 30.0))
 BODY_RADIUS_MM = 95.0
 MARKER_EXTENT_MM = 80.0
-
-
-def _run(argv, capsys):
-    try:
-        code = main([str(a) for a in argv])
-    except SystemExit as exc:
-        code = exc.code
-    captured = capsys.readouterr()
-    return code, captured.out, captured.err
 
 
 @pytest.fixture(scope="module")
