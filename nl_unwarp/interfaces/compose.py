@@ -77,11 +77,13 @@ def _with_jacobian(chain: list, factor, source) -> list:
     return chain[:-1] + [factor, chain[-1]]
 
 
-def _own_set(sink, factory):
+def _own_set(sink):
     """``sink`` left to its owner to commit, or a new set committed on leaving the block."""
     import contextlib
 
-    return contextlib.nullcontext(sink) if sink is not None else factory()
+    from ..io.atomic import OutputSet
+
+    return contextlib.nullcontext(sink) if sink is not None else OutputSet()
 
 
 def compose_transform_files(transforms, reference, *, out_field=None, out_composite=None,
@@ -124,7 +126,6 @@ def compose_transform_files(transforms, reference, *, out_field=None, out_compos
 
     from ..compose import AffineStep, CoverageError, FactorStep, compose_chain
     from ..errors import InputError
-    from ..io.atomic import OutputSet
     from ..io.nifti import load_image, write_image
     from ..io.transforms import save_chain, write_itk_field
 
@@ -138,7 +139,7 @@ def compose_transform_files(transforms, reference, *, out_field=None, out_compos
     raw_img = load_image(raw) if raw is not None else None
     summary = {"steps": ["affine" if isinstance(s, AffineStep) else
                          "factor" if isinstance(s, FactorStep) else "field" for s in chain]}
-    with _own_set(sink, OutputSet) as out:
+    with _own_set(sink) as out:
         if out_field is not None or out_factor is not None:
             try:
                 composed = compose_chain(chain, ref.spatial_shape, ref.affine,
@@ -218,7 +219,6 @@ def resample_once_file(source, transforms, out_file, *, reference=None, volume_t
 
     from ..compose import CoverageError
     from ..errors import InputError
-    from ..io.atomic import OutputSet
     from ..io.nifti import load_image, write_image
 
     image = load_image(source)
@@ -247,7 +247,7 @@ def resample_once_file(source, transforms, out_file, *, reference=None, volume_t
         except CoverageError as exc:
             raise InputError(str(reference or source), str(exc)) from None
         uncovered = max(uncovered, frac)
-    with _own_set(sink, OutputSet) as out_set:
+    with _own_set(sink) as out_set:
         write_image(out_set, out_file, out if data.ndim == 4 else out[..., 0], ref.affine,
                     header=image.header)
     return {"uncovered_fraction": uncovered, "volumes": int(volumes.shape[3])}
