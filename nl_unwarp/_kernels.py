@@ -405,18 +405,35 @@ def _fold_voxel(i, j, k, target_map, raw_map, raw_dims, use_raw, program, affine
 
 
 @numba.njit(inline="always", cache=True)
-def _sample_voxel(i, j, k, coef, order, fill, target_map, raw_map, program, affines, addresses, sizes, dims,
-                  maps, out, missed, wx, wy, wz):
-    """One target voxel of :func:`fold_chain_and_sample`."""
+def _end_voxel(i, j, k, target_map, raw_map, program, affines, addresses, sizes, dims, maps, ends):
+    """Pass 1 of a line of :func:`fold_chain_and_sample`: the end point of voxel ``i`` as a raw
+    voxel index, its factor and its miss flag, into row ``i`` of ``ends``."""
     px, py, pz = _point(target_map, i, j, k)
     x, y, z, f, miss = _follow(i, j, k, px, py, pz, program, affines, addresses, sizes, dims, maps)
-    ri, rj, rk = _point(raw_map, x, y, z)
-    if _inside(ri, coef.shape[0]) and _inside(rj, coef.shape[1]) and _inside(rk, coef.shape[2]):
-        out[i, j, k] = _sample(coef, ri, rj, rk, order, wx, wy, wz) * f
-        missed[i, j, k] = miss
-    else:
-        out[i, j, k] = fill
-        missed[i, j, k] = False
+    ends[i, 0], ends[i, 1], ends[i, 2] = _point(raw_map, x, y, z)
+    ends[i, 3] = f
+    ends[i, 4] = 1.0 if miss else 0.0
+
+
+@numba.njit(inline="always", cache=True)
+def _sample_line(coef, order, fill, ends, j, k, out, missed, wx, wy, wz):
+    """Pass 2 of a line: sample the raw image at the end points in ``ends`` (see
+    :func:`_end_voxel`), times the factor, or ``fill`` outside the raw field of view.
+
+    A line is followed first and sampled after (two passes over a small
+    buffer) so that the reads of each pass are independent from voxel to voxel
+    and the processor overlaps them; in one pass each sample's reads wait for
+    the chain's (about 7 % faster, ``benchmarks/bench_compose.py``).
+    """
+    rx, ry, rz = coef.shape
+    for i in range(out.shape[0]):
+        ri, rj, rk = ends[i, 0], ends[i, 1], ends[i, 2]
+        if _inside(ri, rx) and _inside(rj, ry) and _inside(rk, rz):
+            out[i, j, k] = _sample(coef, ri, rj, rk, order, wx, wy, wz) * ends[i, 3]
+            missed[i, j, k] = ends[i, 4] != 0.0
+        else:
+            out[i, j, k] = fill
+            missed[i, j, k] = False
 
 
 @numba.njit(parallel=True, cache=True)
@@ -479,13 +496,14 @@ def fold_chain_and_sample(coef, order, fill, target_map, raw_map, program, affin
     tj, tk = (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
     for tile in numba.prange(tj * tk):
         wx, wy, wz = np.empty(4), np.empty(4), np.empty(4)
+        ends = np.empty((nx, 5))
         for row in range(TILE * TILE):
             j, k = _tile_line(tile, row, tj)
             if j >= ny or k >= nz:
                 continue
             for i in range(nx):
-                _sample_voxel(i, j, k, coef, order, fill, target_map, raw_map, program, affines, addresses,
-                              sizes, dims, maps, out, missed, wx, wy, wz)
+                _end_voxel(i, j, k, target_map, raw_map, program, affines, addresses, sizes, dims, maps, ends)
+            _sample_line(coef, order, fill, ends, j, k, out, missed, wx, wy, wz)
 
 
 @numba.njit(parallel=True, cache=True)
@@ -536,10 +554,10 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
     # J on G's own grid (a FieldStep's jacobian) reads the same cells.
     same_cells = jx == gx and jy == gy and jz == gz and ox == 0 and oy == 0 and oz == 0
     vol = gx * gy * gz
-    rx, ry, rz = coef.shape
     tj, tk = (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
     for tile in numba.prange(tj * tk):
         wx, wy, wz = np.empty(4), np.empty(4), np.empty(4)
+        ends = np.empty((nx, 5))
         for row in range(TILE * TILE):
             j, k = _tile_line(tile, row, tj)
             if j >= ny or k >= nz:
@@ -578,10 +596,7 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
                         if use_jac:
                             f = _factor_at(jac, jx, jy, jz, gi + ox, gj + oy, gk + oz)
                         miss = True
-                ri, rj, rk = _point(raw_map, x, y, z)
-                if _inside(ri, rx) and _inside(rj, ry) and _inside(rk, rz):
-                    out[i, j, k] = _sample(coef, ri, rj, rk, order, wx, wy, wz) * f
-                    missed[i, j, k] = miss
-                else:
-                    out[i, j, k] = fill
-                    missed[i, j, k] = False
+                ends[i, 0], ends[i, 1], ends[i, 2] = _point(raw_map, x, y, z)
+                ends[i, 3] = f
+                ends[i, 4] = 1.0 if miss else 0.0
+            _sample_line(coef, order, fill, ends, j, k, out, missed, wx, wy, wz)
