@@ -24,6 +24,14 @@ __all__ = ["STEP_AFFINE", "STEP_FACTOR", "STEP_FACTOR_NODES", "STEP_FIELD", "STE
            "STEP_FIELD_NODES", "field_affine_field_sample", "fold_chain", "fold_chain_and_sample",
            "pull_resample"]
 
+#: Floating-point freedoms of the resampling kernels: fused multiply-add,
+#: reassociation, reciprocals (the B-spline weights' ``/ 6``), approximate
+#: functions, no signed zeros. Not ``nnan``/``ninf``: a NaN point must keep
+#: failing the inside tests, or its index would read out of bounds. Results
+#: move at rounding level only (the tests compare with scipy.ndimage); the
+#: plain correction and the chains gain alike (``benchmarks/bench_compose.py``).
+FAST_MATH = {"contract", "reassoc", "arcp", "afn", "nsz"}
+
 
 @numba.njit(inline="always", cache=True)
 def _mirror(i, n):
@@ -120,7 +128,7 @@ def _pull_point(coef, disp, m, r, jac, use_jac, fill, order, out, i, j, k, wx, w
     out[i, j, k] = value
 
 
-@numba.njit(parallel=True, cache=True)
+@numba.njit(parallel=True, cache=True, fastmath=FAST_MATH)
 def pull_resample(coef, disp, index_map, ras_to_index, jac, use_jac, fill, order, out):
     """Resample ``coef`` at ``index_map @ [i, j, k, 1] + ras_to_index @ disp[i, j, k]``.
 
@@ -436,7 +444,7 @@ def _sample_line(coef, order, fill, ends, j, k, out, missed, wx, wy, wz):
             missed[i, j, k] = False
 
 
-@numba.njit(parallel=True, cache=True)
+@numba.njit(parallel=True, cache=True, fastmath=FAST_MATH)
 def fold_chain(target_map, raw_map, raw_dims, use_raw, program, affines, addresses, sizes, dims, maps,
                disp, factor, missed):
     """Fold a chain into a displacement field on a target grid, x fastest.
@@ -480,7 +488,7 @@ def fold_chain(target_map, raw_map, raw_dims, use_raw, program, affines, address
                             sizes, dims, maps, disp, factor, missed)
 
 
-@numba.njit(parallel=True, cache=True)
+@numba.njit(parallel=True, cache=True, fastmath=FAST_MATH)
 def fold_chain_and_sample(coef, order, fill, target_map, raw_map, program, affines, addresses, sizes,
                           dims, maps, out, missed):
     """Follow the chain from every target voxel and sample the raw image there, in one pass.
@@ -506,7 +514,7 @@ def fold_chain_and_sample(coef, order, fill, target_map, raw_map, program, affin
             _sample_line(coef, order, fill, ends, j, k, out, missed, wx, wy, wz)
 
 
-@numba.njit(parallel=True, cache=True)
+@numba.njit(parallel=True, cache=True, fastmath=FAST_MATH)
 def field_affine_field_sample(coef, order, fill, target_map, first, first_offset, use_first, matrix,
                               last, last_dims, last_map, use_last, jac, jac_dims, jac_offset, use_jac,
                               raw_map, out, missed):

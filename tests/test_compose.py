@@ -284,6 +284,27 @@ def test_unrolled_chains_match_scipy_at_the_chain_points(order, shape_name):
     np.testing.assert_array_equal(got.uncovered, generic.uncovered)
 
 
+@pytest.mark.parametrize("unroll", [True, False])
+def test_nan_in_a_field_fills_its_voxels(unroll):
+    """NaN displacements in the registration field fill their target voxels, unflagged, in the
+    unrolled kernel and the generic program alike (the kernels' ``FAST_MATH`` leaves out ``nnan``,
+    so a NaN point fails every inside test instead of becoming an index); the other voxels are
+    those of the same chain without the NaNs. Robustness, no outside reference."""
+    shape = (14, 15, 13)
+    aff = _oblique(shape, (2.5, 3.0, 3.2), 20.0, (0, 0, 0))
+    chain = _unrolled_chain("W, A, A, G+J", shape, aff)
+    raw, raw_aff = _raw_for_sampling()
+    clean = resample_chain(raw, raw_aff, chain, shape, aff, fill=FILL, on_outside="ignore", unroll=unroll)
+    holes = np.zeros(shape, bool)
+    holes[1::4, ::5, 2::3] = True
+    w = chain[0].disp_ras_mm.copy()
+    w[holes, 1] = np.nan
+    chain = [FieldStep(w, chain[0].affine)] + chain[1:]
+    got = resample_chain(raw, raw_aff, chain, shape, aff, fill=FILL, on_outside="ignore", unroll=unroll)
+    assert (got.data[holes] == np.float32(FILL)).all() and not got.uncovered[holes].any()
+    np.testing.assert_array_equal(got.data[~holes], clean.data[~holes])
+
+
 def test_other_chain_shapes_take_the_generic_program():
     from nl_unwarp.compose import _unrolled_arguments
 
