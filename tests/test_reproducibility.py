@@ -6,7 +6,9 @@ MultiProc with 1 thread. Every derivative file (NIfTI header and data, ITK trans
 sidecar JSON, bval/bvec, tables, HTML reports) is compared whole, byte for byte; no sidecar
 field is excluded, because none holds a timestamp or a path that differs between these runs
 (see ``bidsrun.tree_differences``). Library level: the warp and the corrected image with numba
-running 1 or 2 threads, as a hypothesis property over grids and interpolation orders.
+running 1 or 2 threads, as a hypothesis property over grids and interpolation orders. Compiler
+level: every compiled kernel gives the same bytes when numba compiles it and when a later process
+loads the machine code that compile saved (``cache=True``).
 
 Bit-for-bit identity under any schedule and thread count is what a reproducible research
 pipeline is expected to give (common practice, no source): our kernels split work by output
@@ -14,6 +16,10 @@ voxel and never reduce across threads, so no sum depends on the split.
 """
 
 from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
 
 import numba
 import numpy as np
@@ -104,3 +110,38 @@ def test_thread_count_does_not_change_results(numba_threads, shape, voxel_mm, or
     two = _warp_and_correct(demo_coil, data, affine, order, 2)
     for a, b in zip(one, two, strict=True):
         assert a.dtype == b.dtype and a.tobytes() == b.tobytes()
+
+
+# Compiler level: a kernel compiled in this process and the same kernel loaded from numba's
+# on-disk cache give the same bytes. Numba executes a fresh compile through its JIT and saves
+# separately emitted object code for later processes; with reassociation allowed
+# (fastmath "reassoc", or the whole fastmath set) the two were seen to order the cubic
+# B-spline sums differently, so a pipeline whose nodes run in fresh processes (a batch
+# cluster job loads the cache; the first worker compiles) wrote different rounding in
+# near-zero background voxels. See ``nl_unwarp._kernels.FAST_MATH``.
+
+KERNEL_RUN = Path(__file__).with_name("kernelrun.py")
+KERNEL_RUN_TIMEOUT_S = 900
+
+
+def _kernel_results(out: Path, cache: Path) -> dict[str, np.ndarray]:
+    done = subprocess.run([sys.executable, str(KERNEL_RUN), str(out)], capture_output=True, text=True,
+                          env=child_env(NUMBA_CACHE_DIR=str(cache), NUMBA_DISABLE_JIT=None),
+                          timeout=KERNEL_RUN_TIMEOUT_S)
+    assert done.returncode == 0, done.stderr
+    with np.load(out) as saved:
+        return {name: saved[name] for name in saved.files}
+
+
+def test_cached_kernels_equal_fresh_ones(tmp_path):
+    cache = tmp_path / "numba_cache"
+    fresh = _kernel_results(tmp_path / "fresh.npz", cache)
+    assert list(cache.rglob("*.nbi")), "the first run saved no compiled kernel"
+    saved = {p: p.stat().st_mtime_ns for p in cache.rglob("*.nbc")}
+    cached = _kernel_results(tmp_path / "cached.npz", cache)
+    # The second run loaded what the first saved: it compiled nothing new.
+    assert {p: p.stat().st_mtime_ns for p in cache.rglob("*.nbc")} == saved
+    assert sorted(fresh) == sorted(cached)
+    differ = {name: int((fresh[name] != cached[name]).sum()) for name in fresh
+              if fresh[name].tobytes() != cached[name].tobytes()}
+    assert differ == {}, f"voxels that differ between compiled and cached kernels: {differ}"
