@@ -12,9 +12,18 @@ from __future__ import annotations
 import sys
 
 import numpy as np
+from sampling import oblique_affine  # this folder is first on the path of a script run from it
 
 from nl_unwarp.api import FrameSpec, make_frame
-from nl_unwarp.compose import AffineStep, FactorStep, FieldStep, compose_chain, grid_with_margin, resample_chain
+from nl_unwarp.compose import (
+    AffineStep,
+    FactorStep,
+    FieldStep,
+    compose_chain,
+    grid_with_margin,
+    margin_slices,
+    resample_chain,
+)
 from nl_unwarp.demo import demo_coil_path
 from nl_unwarp.io.coilfile import load_coil
 from nl_unwarp.resample import resample_volume
@@ -28,8 +37,7 @@ MARGIN_MM = 27.0
 def _case():
     """A blob on a zero background (sums that cancel to rounding level near the edges), its
     grid, and the demo coil's warp on the grid grown by a margin, as the pipeline makes it."""
-    affine = np.diag([VOXEL_MM, VOXEL_MM, VOXEL_MM, 1.0])
-    affine[:3, 3] = -VOXEL_MM * (np.asarray(SHAPE) - 1) / 2
+    affine = oblique_affine(SHAPE, (VOXEL_MM,) * 3, (0.0, 0.0, 0.0), (0.0, 0.0, 0.0))
     ijk = np.indices(SHAPE, dtype=float)
     r2 = sum((g - (n - 1) / 2) ** 2 for g, n in zip(ijk, SHAPE, strict=True))
     image = np.asfortranarray(np.where(r2 < 60.0, np.exp(-r2 / 30.0), 0.0).astype(np.float32) * 3.0)
@@ -46,7 +54,8 @@ def main(out: str) -> None:
     motion[:3, :3] = [[0.999, -0.03, 0.0], [0.03, 0.999, 0.01], [0.0, -0.01, 1.0]]
     motion[:3, 3] = [1.5, -2.0, 0.7]
     chain = [AffineStep(motion), field]
-    inner = (slice(3, -3),) * 3  # the Jacobian map on the image grid, as ApplyWarp is given it
+    # The Jacobian map on the image grid, as ApplyWarp is given it.
+    inner = margin_slices(SHAPE, warp.disp_ras_mm.shape[:3])
     correction = [FactorStep(np.asfortranarray(warp.jacobian[inner]), affine),
                   FieldStep(warp.disp_ras_mm, grown_affine)]
     results = {}
@@ -54,10 +63,9 @@ def main(out: str) -> None:
         results[f"pull_{order}"] = resample_volume(image, affine, warp.disp_ras_mm, grown_affine,
                                                    jacobian=warp.jacobian, order=order)
         for unroll in (True, False):  # field_affine_field_sample, fold_chain_and_sample
-            results[f"chain_{order}_{unroll}"] = resample_chain(
-                image, affine, chain, SHAPE, affine, order=order, unroll=unroll, on_outside="ignore").data
-            results[f"correction_{order}_{unroll}"] = resample_chain(
-                image, affine, correction, SHAPE, affine, order=order, unroll=unroll, on_outside="ignore").data
+            for name, steps in (("chain", chain), ("correction", correction)):
+                results[f"{name}_{order}_{unroll}"] = resample_chain(
+                    image, affine, steps, SHAPE, affine, order=order, unroll=unroll, on_outside="ignore").data
     composed = compose_chain(chain, SHAPE, affine, on_outside="ignore")  # fold_chain
     results["fold_disp"], results["fold_factor"] = composed.disp_ras_mm, composed.factor
     np.savez(out, **results)

@@ -113,12 +113,7 @@ def test_thread_count_does_not_change_results(numba_threads, shape, voxel_mm, or
 
 
 # Compiler level: a kernel compiled in this process and the same kernel loaded from numba's
-# on-disk cache give the same bytes. Numba executes a fresh compile through its JIT and saves
-# separately emitted object code for later processes; with reassociation allowed
-# (fastmath "reassoc", or the whole fastmath set) the two were seen to order the cubic
-# B-spline sums differently, so a pipeline whose nodes run in fresh processes (a batch
-# cluster job loads the cache; the first worker compiles) wrote different rounding in
-# near-zero background voxels. See ``nl_unwarp._kernels.FAST_MATH``.
+# on-disk cache give the same bytes (why this once failed: ``nl_unwarp._kernels.FAST_MATH``).
 
 KERNEL_RUN = Path(__file__).with_name("kernelrun.py")
 KERNEL_RUN_TIMEOUT_S = 900
