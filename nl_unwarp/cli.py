@@ -98,6 +98,11 @@ def _add_warp_outputs(p: argparse.ArgumentParser, *, required_field: bool) -> No
                         "registration and ITK-style tools (identity outside a field) never leave it; "
                         f"the other maps stay on the image's grid (default: {FIELD_MARGIN_MM:g}; 0: "
                         "the image's grid)")
+    g.add_argument("--field-spacing", type=float, metavar="MM",
+                   help="voxel size of the field's grid, mm, on the image's axes (default: the image's "
+                        "voxels); e.g. 2 writes an eighth of the data of a 1 mm field, which later "
+                        "steps compose and apply faster, and the summary gives its largest "
+                        "deviation from the warp used on the image")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -219,7 +224,8 @@ def _warp_outputs(args):
     from .api import WarpOutputs
 
     return WarpOutputs(args.out_field, args.out_jacobian, args.out_magnitude, args.out_mask,
-                       args.out_summary, field_margin_mm=args.field_margin)
+                       args.out_summary, field_margin_mm=args.field_margin,
+                       field_spacing_mm=args.field_spacing)
 
 
 def _slice_axis(args):
@@ -237,6 +243,11 @@ def _print_warp_summary(s: dict) -> None:
     print(f"beyond valid r.  {100 * s['outside_valid_fraction']:.1f} % of voxels")
     print(f"warp lattice     {s['lattice_mm']:g} mm, "
           f"interpolation error {s['interpolation_error_mm']:.2e} mm")
+    if "field_grid" in s:
+        f = s["field_grid"]
+        print(f"field grid       {' x '.join(str(n) for n in f['shape'])} at "
+              f"{' x '.join(f'{v:g}' for v in f['spacing_mm'])} mm, margin {f['margin_mm']:g} mm; "
+              f"read trilinearly it is within {f['deviation_max_mm']:.1e} mm of the image's warp")
 
 
 def _cmd_warp(args, progress: _Progress) -> None:

@@ -242,21 +242,45 @@ class ResampledChain:
         return float(self.uncovered.mean()) if self.uncovered.size else 0.0
 
 
-def grid_with_margin(shape: Sequence[int], affine: np.ndarray, margin_mm: float
-                     ) -> tuple[tuple[int, int, int], np.ndarray]:
-    """The grid grown by at least ``margin_mm`` on every side (same axes, same spacing).
+def grid_with_margin(shape: Sequence[int], affine: np.ndarray, margin_mm: float,
+                     spacing_mm: float | None = None) -> tuple[tuple[int, int, int], np.ndarray]:
+    """The grid grown by at least ``margin_mm`` on every side (same axes).
 
     Axes of length 1 (single slices) are grown too: a field must cover the
     points a registration moves off the slice.
+
+    Parameters
+    ----------
+    shape : sequence of 3 int
+    affine : (4, 4) ndarray
+        Voxel -> RAS mm.
+    margin_mm : float
+        Least distance, mm, from the old grid's outer voxel centres to the new
+        grid's, on every side.
+    spacing_mm : float, optional
+        Voxel size of the new grid, mm, on every axis (the axes keep their
+        directions); default: the old grid's voxel sizes, whole voxels added.
 
     Returns
     -------
     shape : tuple of 3 int
     affine : (4, 4) ndarray
-        Voxel ``(m, m, m)`` of the new grid is voxel ``(0, 0, 0)`` of the old one.
+        Without ``spacing_mm``, voxel ``(m, m, m)`` of the new grid is voxel
+        ``(0, 0, 0)`` of the old one (:func:`margin_slices`); with it, the new
+        grid is centred on the old one.
     """
     affine = np.asarray(affine, dtype=float)
     zooms = np.linalg.norm(affine[:3, :3], axis=0)
+    if spacing_mm is not None:
+        # Extent of the old voxel centres plus the margin, covered by whole new voxels.
+        span = (np.asarray(shape, float) - 1) * zooms + 2 * float(margin_mm)
+        new_shape = tuple(int(n) for n in np.ceil(span / spacing_mm - 1e-5).astype(int) + 1)
+        axes = affine[:3, :3] / zooms
+        centre = affine[:3, :3] @ ((np.asarray(shape, float) - 1) / 2) + affine[:3, 3]
+        new_affine = np.eye(4)
+        new_affine[:3, :3] = axes * float(spacing_mm)
+        new_affine[:3, 3] = centre - new_affine[:3, :3] @ ((np.asarray(new_shape, float) - 1) / 2)
+        return new_shape, new_affine
     # A margin that is a whole number of voxels stays one when the affine comes
     # from a NIfTI header (float32: voxel sizes off by ~1e-7 of themselves).
     pad = np.ceil(float(margin_mm) / zooms - 1e-5).astype(int) if margin_mm > 0 else np.zeros(3, int)

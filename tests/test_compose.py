@@ -14,6 +14,9 @@ import logging
 import numpy as np
 import pytest
 import SimpleITK as sitk
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from nibabel.affines import voxel_sizes
 from scipy import ndimage
 
 from nl_unwarp.compose import (
@@ -447,6 +450,33 @@ def test_grid_with_margin(margin_mm):
     np.testing.assert_allclose(new_aff[:3, :3] @ pad + new_aff[:3, 3], aff[:3, 3], atol=1e-9)
     np.testing.assert_allclose(new_aff[:3, :3], aff[:3, :3])
     assert np.all(pad * zooms >= margin_mm - 1e-9)
+
+
+@given(spacing=st.floats(0.7, 4.0), margin=st.floats(0.0, 25.0), angle=st.floats(-40.0, 40.0),
+       single=st.booleans())
+@settings(max_examples=40, deadline=None)
+def test_grid_with_margin_at_another_spacing_covers_the_grid(spacing, margin, angle, single):
+    """With ``spacing_mm`` the new grid keeps the axes, has that voxel size (nibabel's
+    ``voxel_sizes`` as the reference) and holds every point within ``margin`` of the old
+    voxel-centre box: its 8 corners moved out by the margin along each axis land inside the new
+    voxel-centre box (continuous index in [0, n - 1]). Tolerance 1e-6 voxel (float rounding)."""
+    shape = (10, 1 if single else 7, 8)
+    aff = _oblique(shape, (2.0, 3.0, 1.2), angle, (1.0, 2.0, 3.0))
+    new_shape, new_aff = grid_with_margin(shape, aff, margin, spacing_mm=spacing)
+    np.testing.assert_allclose(voxel_sizes(new_aff), spacing, rtol=1e-12)
+    old_axes = aff[:3, :3] / voxel_sizes(aff)
+    np.testing.assert_allclose(new_aff[:3, :3] / spacing, old_axes, atol=1e-12)
+    zooms = voxel_sizes(aff)
+    corners = np.array(np.meshgrid(*[[0.0, n - 1.0] for n in shape], indexing="ij")).reshape(3, -1).T
+    signs = np.where(corners > 0, 1.0, -1.0)
+    # Out by the margin along each axis, in the old grid's voxel units.
+    grown = corners + signs * margin / zooms
+    world = grown @ aff[:3, :3].T + aff[:3, 3]
+    index = (world - new_aff[:3, 3]) @ np.linalg.inv(new_aff[:3, :3]).T
+    assert np.all(index >= -1e-6) and np.all(index <= np.array(new_shape) - 1 + 1e-6)
+    # No more than one voxel of slack on each side.
+    span_mm = (np.array(shape) - 1) * zooms + 2 * margin
+    assert np.all(np.array(new_shape) - 1 <= span_mm / spacing + 1)
 
 
 def test_bad_steps_are_refused():

@@ -42,6 +42,11 @@ class _MakeWarpInputSpec(BaseInterfaceInputSpec):
                                         "every side, so that registration and ITK-style tools (identity "
                                         "outside a field) never leave it; 0: the reference grid. The "
                                         "other maps stay on the reference grid")
+    field_spacing_mm = traits.Range(low=0.0, exclude_low=True,
+                                    desc="voxel size (mm) of the field's grid, on the reference's axes "
+                                         "(default: the reference's voxels); coarser fields are smaller "
+                                         "and compose faster, read trilinearly (the summary gives the "
+                                         "largest deviation)")
 
 
 class _MakeWarpOutputSpec(TraitedSpec):
@@ -86,9 +91,10 @@ class MakeWarp(SimpleInterface):
             tuple(self.inputs.isocenter_offset_mm) if isdefined(self.inputs.isocenter_offset_mm) else None,
         )
         axis = None if self.inputs.slice_axis == "auto" else "ijk".index(self.inputs.slice_axis)
+        spacing = self.inputs.field_spacing_mm if isdefined(self.inputs.field_spacing_mm) else None
         warp_file(self.inputs.reference, self.inputs.coil_model,
-                  WarpOutputs(**paths, field_margin_mm=self.inputs.field_margin_mm), frame=frame,
-                  mode=self.inputs.mode, slice_axis=axis)
+                  WarpOutputs(**paths, field_margin_mm=self.inputs.field_margin_mm, field_spacing_mm=spacing),
+                  frame=frame, mode=self.inputs.mode, slice_axis=axis)
         self._results.update({f"out_{k}": v for k, v in paths.items()})
         return runtime
 
