@@ -160,16 +160,19 @@ def main() -> None:
         record("once generic", lambda c=chain: resample_chain(raw, raw_aff, c, shape, target_aff,
                                                               on_outside="ignore", unroll=False))
         coarse = record("coarse warp", lambda: compute_warp(coil, coarse_shape, coarse_aff, frame))
-        once_coarse = record("once coarse", lambda c=chain_of(coarse): resample_chain(
+        coarse_chain = chain_of(coarse)
+        once_coarse = record("once coarse", lambda c=coarse_chain: resample_chain(
             raw, raw_aff, c, shape, target_aff, on_outside="ignore"))
-        coarse_gap = max(coarse_gap, float(np.abs(once_coarse.data - once.data).max()))
+        # Voxels whose end point crosses the raw image's edge between the two fields jump to the
+        # fill value: the percentile shows the interior.
+        coarse_gap = float(np.percentile(np.abs(once_coarse.data - once.data), 99.9))
         composed = record("compose", lambda c=chain: compose_chain(c, shape, target_aff, raw_shape=shape,
                                                                    raw_affine=raw_aff, on_outside="ignore"))
         two = record("apply", lambda f=composed: resample_volume(raw, raw_aff, f.disp_ras_mm, target_aff,
                                                                   jacobian=f.factor))
         agreement = max(agreement, float(np.abs(once.data - two).max()))
         uncovered = once.uncovered_fraction
-        del warp, grown, inner, chain, once, composed, two, coarse, once_coarse
+        del warp, grown, inner, chain, once, composed, two, coarse, coarse_chain, once_coarse
 
     med_w = {s: statistics.median(v) for s, v in wall.items()}
     med_c = {s: statistics.median(v) for s, v in cpu.items()}
@@ -212,7 +215,8 @@ def main() -> None:
         print(f"{label:46s} {rw:6.2f} {rc:6.2f}")
     print(f"one pass vs two-pass: largest difference {agreement:.2e} (intensities ~100)")
     print(f"uncovered target points: {100 * uncovered:.3f} %")
-    print(f"one pass with the {COARSE_MM:g} mm field vs the 1 mm one: largest difference {coarse_gap:.2e}")
+    print(f"one pass with the {COARSE_MM:g} mm field vs the 1 mm one: 99.9th percentile of the "
+          f"difference {coarse_gap:.2e} (intensities ~100)")
 
 
 if __name__ == "__main__":

@@ -92,8 +92,8 @@ class WarpOutputs:
     :data:`FIELD_MARGIN_MM`); 0 writes it on the raw grid. ``field_spacing_mm``
     gives that grid another voxel size (isotropic, the image's axes; default:
     the image's voxels): a 2 mm field of a smooth gradient system is an eighth
-    of the size of a 1 mm one and is composed and applied faster, at the price
-    of its trilinear interpolation, which the summary reports
+    of the size of a 1 mm one to write, store and read, at the price of its
+    trilinear interpolation, which the summary reports
     (``field_grid.deviation_max_mm``). The other maps are always on the raw
     (reference) grid, voxel for voxel with the image.
     """

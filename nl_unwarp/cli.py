@@ -100,9 +100,9 @@ def _add_warp_outputs(p: argparse.ArgumentParser, *, required_field: bool) -> No
                         "the image's grid)")
     g.add_argument("--field-spacing", type=float, metavar="MM",
                    help="voxel size of the field's grid, mm, on the image's axes (default: the image's "
-                        "voxels); e.g. 2 writes an eighth of the data of a 1 mm field, which later "
-                        "steps compose and apply faster, and the summary gives its largest "
-                        "deviation from the warp used on the image")
+                        "voxels); e.g. 2 writes an eighth of the data of a 1 mm field; tools read it "
+                        "trilinearly, and the summary gives the largest deviation of that reading "
+                        "from the warp used on the image")
 
 
 def build_parser() -> argparse.ArgumentParser:

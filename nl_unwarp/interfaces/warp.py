@@ -44,9 +44,9 @@ class _MakeWarpInputSpec(BaseInterfaceInputSpec):
                                         "other maps stay on the reference grid")
     field_spacing_mm = traits.Range(low=0.0, exclude_low=True,
                                     desc="voxel size (mm) of the field's grid, on the reference's axes "
-                                         "(default: the reference's voxels); coarser fields are smaller "
-                                         "and compose faster, read trilinearly (the summary gives the "
-                                         "largest deviation)")
+                                         "(default: the reference's voxels); a coarser field is smaller, "
+                                         "read trilinearly (the summary gives the largest deviation "
+                                         "of that reading from the warp on the reference grid)")
 
 
 class _MakeWarpOutputSpec(TraitedSpec):
