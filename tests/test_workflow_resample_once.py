@@ -95,6 +95,19 @@ def test_composable_field_default_margin_is_the_library_one():
     assert MakeComposableField().inputs.margin_mm == FIELD_MARGIN_MM
 
 
+def test_composable_field_at_another_spacing(small_chain, tmp_path, monkeypatch):
+    """MakeComposableField(field_spacing_mm=...) writes the field at that voxel size (nibabel
+    reads it back) with the Jacobian map on the raw grid."""
+    from nl_unwarp.demo import demo_coil_path
+
+    monkeypatch.chdir(tmp_path)
+    reference = small_chain[0] / "ref.nii.gz"
+    result = MakeComposableField(reference=str(reference), coil_model=str(demo_coil_path()),
+                                 isocenter_offset_mm=[0.0, 0.0, 20.0], field_spacing_mm=5.0).run()
+    np.testing.assert_allclose(nib.load(result.outputs.out_field).header.get_zooms()[:3], 5.0, rtol=1e-6)
+    assert nib.load(result.outputs.out_jacobian).shape[:3] == nib.load(reference).shape[:3]
+
+
 @pytest.fixture
 def small_chain(tmp_path):
     """A reference image, an affine and a field (files), and the chain they make."""

@@ -350,11 +350,15 @@ class _MakeComposableFieldInputSpec(BaseInterfaceInputSpec):
     margin_mm = traits.Float(FIELD_MARGIN_MM, usedefault=True,
                              desc="margin (mm) beyond the raw field of view on every side (ITK applies "
                                   "identity outside a field's grid)")
+    field_spacing_mm = traits.Range(low=0.0, exclude_low=True,
+                                    desc="voxel size (mm) of the field's grid, on the raw image's axes "
+                                         "(default: the raw image's voxels); read trilinearly")
 
 
 class _MakeComposableFieldOutputSpec(TraitedSpec):
     out_field = File(exists=True,
-                     desc="correction field (ITK/ANTs NIfTI) on the raw grid grown by the margin")
+                     desc="correction field (ITK/ANTs NIfTI) on the raw grid grown by the margin "
+                          "(at field_spacing_mm if given)")
     out_jacobian = File(exists=True, desc="Jacobian determinant map on the raw grid")
 
 
@@ -372,7 +376,8 @@ class MakeComposableField(SimpleInterface):
         frame = FrameSpec(self.inputs.patient_position, optional(self.inputs, "table_position_mm", tuple),
                           optional(self.inputs, "isocenter_offset_mm", tuple))
         warp_file(self.inputs.reference, self.inputs.coil_model,
-                  WarpOutputs(field=field, jacobian=jac, field_margin_mm=self.inputs.margin_mm),
+                  WarpOutputs(field=field, jacobian=jac, field_margin_mm=self.inputs.margin_mm,
+                              field_spacing_mm=optional(self.inputs, "field_spacing_mm")),
                   frame=frame)
         self._results.update(out_field=str(field), out_jacobian=str(jac))
         return runtime

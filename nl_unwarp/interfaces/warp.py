@@ -17,6 +17,7 @@ from ..compose import FIELD_MARGIN_MM
 from ..frames import PATIENT_POSITIONS
 from ..resample import ORDERS
 from ..warp import MODES
+from ._utils import optional
 
 __all__ = ["ApplyWarp", "MakeWarp"]
 
@@ -91,7 +92,7 @@ class MakeWarp(SimpleInterface):
             tuple(self.inputs.isocenter_offset_mm) if isdefined(self.inputs.isocenter_offset_mm) else None,
         )
         axis = None if self.inputs.slice_axis == "auto" else "ijk".index(self.inputs.slice_axis)
-        spacing = self.inputs.field_spacing_mm if isdefined(self.inputs.field_spacing_mm) else None
+        spacing = optional(self.inputs, "field_spacing_mm")
         warp_file(self.inputs.reference, self.inputs.coil_model,
                   WarpOutputs(**paths, field_margin_mm=self.inputs.field_margin_mm, field_spacing_mm=spacing),
                   frame=frame, mode=self.inputs.mode, slice_axis=axis)
