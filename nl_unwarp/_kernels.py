@@ -521,18 +521,20 @@ def fold_chain_and_sample(coef, order, fill, target_map, raw_map, program, affin
 
 @numba.njit(parallel=True, cache=True, fastmath=FAST_MATH)
 def field_affine_field_sample(coef, order, fill, target_map, first, first_offset, use_first, matrix,
-                              last, last_dims, last_map, use_last, jac, jac_dims, jac_offset, use_jac,
-                              raw_map, out, missed):
+                              last, last_dims, last_map, use_last, jac, jac_dims, jac_offset, jac_lattice,
+                              jac_map, use_jac, raw_map, out, missed):
     """:func:`fold_chain_and_sample` for the chain shape ``[W, A, G (x J)]``, unrolled.
 
     ``W`` (optional) is a field on the target lattice, read at its nodes
     (``first[i + o]``, the ``STEP_FIELD_NODES`` rule); ``A`` is one pull
     matrix (the product of the chain's consecutive affines; identity if
     none); ``G`` (optional) a field read trilinearly (ITK's rule, identity and
-    a flagged miss outside ``[-0.5, n - 0.5]``), with a factor map ``J`` on
-    its lattice (its own grid, or e.g. the raw grid inside the grown one)
-    sharing its weights, held at edge values beyond ``J``'s grid (the
-    ``STEP_FIELD_FACTOR`` rule). The
+    a flagged miss outside ``[-0.5, n - 0.5]``), with a factor map ``J``
+    sampled where ``G`` is, held at edge values beyond ``J``'s grid: on
+    ``G``'s lattice (its own grid, or e.g. the raw grid inside the grown one)
+    it shares ``G``'s weights (the ``STEP_FIELD_FACTOR`` rule), elsewhere (the
+    raw grid and a coarser field) it is interpolated on its own (the
+    ``STEP_FACTOR`` rule). The
     arithmetic is that of the generic kernel, step for step; the chain's
     parameters are plain arguments rather than rows of a program, and ``G``
     is read from flat buffers through one offset per cell
@@ -556,6 +558,10 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
         The factor map ``J``, flat, x fastest (read if ``use_jac``).
     jac_dims, jac_offset : (3,) int64 ndarray
         ``J``'s grid shape, and its voxel index of ``G``'s voxel (0, 0, 0).
+    jac_lattice : bool
+        ``J`` is on ``G``'s lattice (``jac_offset`` applies); else ``jac_map`` does.
+    jac_map : (3, 4) float64 ndarray
+        World RAS mm -> ``J``'s voxel index (used unless ``jac_lattice``).
 
     Other parameters as for :func:`fold_chain_and_sample`.
     """
@@ -565,7 +571,7 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
     jx, jy, jz = jac_dims[0], jac_dims[1], jac_dims[2]
     ox, oy, oz = jac_offset[0], jac_offset[1], jac_offset[2]
     # J on G's own grid (a FieldStep's jacobian) reads the same cells.
-    same_cells = jx == gx and jy == gy and jz == gz and ox == 0 and oy == 0 and oz == 0
+    same_cells = jac_lattice and jx == gx and jy == gy and jz == gz and ox == 0 and oy == 0 and oz == 0
     vol = gx * gy * gz
     tj, tk = (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
     for tile in numba.prange(tj * tk):
@@ -598,16 +604,22 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
                         dx = _blend(last, o, di, dj, dk, ti, tj_, tk_)
                         dy = _blend(last, o + vol, di, dj, dk, ti, tj_, tk_)
                         dz = _blend(last, o + 2 * vol, di, dj, dk, ti, tj_, tk_)
-                        if use_jac:
+                        if use_jac and jac_lattice:
                             if not same_cells:
                                 o, di, dj, dk = _cell(jx, jy, jz, bi + ox, bj + oy, bk + oz)
                             f = _blend(jac, o, di, dj, dk, ti, tj_, tk_)
+                        elif use_jac:
+                            ji, jj, jk = _point(jac_map, x, y, z)
+                            f = _factor_at(jac, jx, jy, jz, ji, jj, jk)
                         x += dx
                         y += dy
                         z += dz
                     else:
-                        if use_jac:
+                        if use_jac and jac_lattice:
                             f = _factor_at(jac, jx, jy, jz, gi + ox, gj + oy, gk + oz)
+                        elif use_jac:
+                            ji, jj, jk = _point(jac_map, x, y, z)
+                            f = _factor_at(jac, jx, jy, jz, ji, jj, jk)
                         miss = True
                 ends[i, 0], ends[i, 1], ends[i, 2] = _point(raw_map, x, y, z)
                 ends[i, 3] = f

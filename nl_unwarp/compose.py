@@ -436,8 +436,9 @@ def _unrolled_arguments(steps: Sequence[Step], target_shape, target_affine: np.n
     The shape is ``[W, A..., (J,) G]``, each part optional: ``W`` a field on the
     target lattice (read at its nodes), any run of affines (multiplied into one
     matrix), ``G`` a field anywhere with its Jacobian map, given with it or as a
-    factor step just before it on its lattice (our raw-grid Jacobian before the
-    field on the grown grid, as ``compose --jacobian-map`` builds the chain).
+    factor step just before it (our raw-grid Jacobian before the field on the
+    grown grid, or on a coarser one, as ``compose --jacobian-map`` builds the
+    chain).
     This covers the correction alone, motion then correction, and registration
     then correction. Other chains (other factor maps, fields elsewhere) return
     None and take the generic program.
@@ -453,13 +454,12 @@ def _unrolled_arguments(steps: Sequence[Step], target_shape, target_affine: np.n
     while rest and isinstance(rest[0], AffineStep):
         matrix = rest.pop(0).matrix_ras @ matrix
     last, last_map = _NO_FIELD, np.zeros((3, 4))
-    jac, jac_offset = _NO_FACTOR, np.zeros(3, np.int64)
+    jac, jac_offset, jac_map = _NO_FACTOR, np.zeros(3, np.int64), np.zeros((3, 4))
     if len(rest) == 2 and isinstance(rest[0], FactorStep) and isinstance(rest[1], FieldStep) \
             and rest[1].jacobian is None:
         factor, g = rest
         jac_offset = _lattice_offset((np.linalg.inv(factor.affine) @ g.affine)[:3], g.shape)
-        if jac_offset is None:
-            return None
+        jac_map = _world_to_index(factor.affine)
         jac, rest = factor.values, [g]
     if rest and isinstance(rest[0], FieldStep):
         g = rest.pop(0)
@@ -471,7 +471,9 @@ def _unrolled_arguments(steps: Sequence[Step], target_shape, target_affine: np.n
     # Flat views (no copies: the arrays are x fastest) that the kernel reads through cell offsets.
     return (first, offset, first is not _NO_FIELD, np.ascontiguousarray(matrix[:3]),
             last.reshape(-1, order="F"), np.array(last.shape[:3], np.int64), last_map, last is not _NO_FIELD,
-            jac.reshape(-1, order="F"), np.array(jac.shape, np.int64), jac_offset, jac is not _NO_FACTOR)
+            jac.reshape(-1, order="F"), np.array(jac.shape, np.int64),
+            np.zeros(3, np.int64) if jac_offset is None else jac_offset, jac_offset is not None, jac_map,
+            jac is not _NO_FACTOR)
 
 
 def _check_on_outside(on_outside: str) -> None:

@@ -251,15 +251,20 @@ def _unrolled_chain(shape_name, target_shape, target_affine):
     # A smaller factor map on G's lattice (our raw-grid Jacobian inside the grown field's grid).
     lattice_factor = FactorStep(np.random.default_rng(14).uniform(0.8, 1.2, (14, 15, 12)),
                                 _shifted(g.affine, (3, 4, 2)))
+    # A factor map on a grid of its own (our raw-grid Jacobian before a coarser field).
+    own_factor = FactorStep(np.random.default_rng(15).uniform(0.8, 1.2, (11, 13, 9)),
+                            _oblique((11, 13, 9), (1.7, 2.1, 2.4), 11.0, (2.0, -1.0, 1.5)))
     return {"W, A, A, G+J": [w_nodes, a, _affine(4), g],
             "W (grown), A, G": [w_larger, a, g_bare],
             "A, G+J": [a, g],
             "G+J": [g],
             "W, A": [w_nodes, a],
-            "W, A, J on G's lattice, G": [w_nodes, a, lattice_factor, g_bare]}[shape_name]
+            "W, A, J on G's lattice, G": [w_nodes, a, lattice_factor, g_bare],
+            "W, A, J on its own grid, G": [w_nodes, a, own_factor, g_bare]}[shape_name]
 
 
-UNROLLED = ["W, A, A, G+J", "W (grown), A, G", "A, G+J", "G+J", "W, A", "W, A, J on G's lattice, G"]
+UNROLLED = ["W, A, A, G+J", "W (grown), A, G", "A, G+J", "G+J", "W, A", "W, A, J on G's lattice, G",
+            "W, A, J on its own grid, G"]
 
 
 @pytest.mark.parametrize("order", [0, 1, 3])
@@ -314,10 +319,11 @@ def test_other_chain_shapes_take_the_generic_program():
     shape = (14, 15, 13)
     aff = _oblique(shape, (2.5, 3.0, 3.2), 20.0, (0, 0, 0))
     w, a, g = _chain()  # w is not on the target lattice
-    factor = FactorStep(np.ones((4, 4, 4)), aff)  # on the target grid, not on g's lattice
+    factor = FactorStep(np.ones((4, 4, 4)), aff)
     g_bare = FieldStep(g.disp_ras_mm, g.affine)
-    for chain in ([w, a, g], [a, g, a], [factor, g], [factor, g_bare], [g, g],
-                  [a, g_bare, factor]):
+    # (A factor map before a bare field is unrolled, on the field's lattice or not; before a
+    # field with its own Jacobian it is a second factor.)
+    for chain in ([w, a, g], [a, g, a], [factor, g], [g, g], [a, g_bare, factor]):
         assert _unrolled_arguments(chain, shape, aff) is None
 
 
