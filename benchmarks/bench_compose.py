@@ -18,6 +18,13 @@
   (:func:`~nl_unwarp.resample.resample_volume`), as a tool that needs the
   field file would do.
 
+* **SimpleITK** (the peer): ``sitk.Resample`` of the raw image onto the
+  target grid through a ``CompositeTransform`` of the same ``W``, ``A`` and
+  ``G`` read from the files we write (cubic B-spline, ``sitkBSpline``; ITK
+  has no factor step, so no Jacobian factor: our one pass without it is
+  compared with it for agreement). Reading the files and building the
+  transform are outside the timed section.
+
 The fields are x fastest (NIfTI's order), as our warps are made and as fields
 read from files are. Repetitions are interleaved (plain, once, two-pass, ...)
 so that the load of a shared machine falls on all alike; the tables give the
@@ -43,7 +50,9 @@ from __future__ import annotations
 import argparse
 import os
 import statistics
+import tempfile
 import time
+from pathlib import Path
 
 import numpy as np
 
@@ -76,6 +85,32 @@ def _registration(shape):
     warp[..., 1] = 2.0 * np.cos(ijk[2] / 25.0)
     warp[..., 2] = 2.5 * np.sin(ijk[0] / 40.0)
     return m, warp
+
+
+def _sitk_peer(folder: Path, raw, raw_aff, target_aff, shape, warp_w, matrix, g):
+    """SimpleITK's inputs from our files: raw image, target grid, and the composite ``[W, A, G]``
+    (ITK's composite takes them in the reverse order, CONVENTIONS.md section 4)."""
+    import SimpleITK as sitk
+
+    from nl_unwarp.io.atomic import OutputSet
+    from nl_unwarp.io.itk import write_itk_field
+    from nl_unwarp.io.nifti import write_image
+    from nl_unwarp.io.transforms import write_itk_affine
+
+    with OutputSet() as out:
+        write_image(out, folder / "raw.nii", raw, raw_aff)
+        write_image(out, folder / "target.nii", np.zeros(shape, np.float32), target_aff)
+        write_itk_field(out, folder / "w.nii", warp_w, target_aff)
+        write_itk_affine(out, folder / "a.mat", matrix)
+        write_itk_field(out, folder / "g.nii", g.disp_ras_mm, g.affine)
+
+    def field(name):
+        return sitk.DisplacementFieldTransform(sitk.ReadImage(str(folder / name), sitk.sitkVectorFloat64))
+
+    composite = sitk.CompositeTransform([field("g.nii"), sitk.ReadTransform(str(folder / "a.mat")),
+                                         field("w.nii")])
+    return (sitk.ReadImage(str(folder / "raw.nii"), sitk.sitkFloat32),
+            sitk.ReadImage(str(folder / "target.nii"), sitk.sitkFloat32), composite)
 
 
 def _timed(fn):
@@ -129,14 +164,15 @@ def main() -> None:
                                                                         _affine((16, 16, 16))))
     small_chain = [FieldStep(warp_w[:8, :8, :8], _affine((8, 8, 8))), AffineStep(matrix),
                    FieldStep(small.disp_ras_mm, small.affine, small.jacobian)]
-    resample_chain(raw[:16, :16, :16], _affine((16, 16, 16)), small_chain, (8, 8, 8), _affine((8, 8, 8)),
-                   on_outside="ignore")
+    for unroll in (True, False):
+        resample_chain(raw[:16, :16, :16], _affine((16, 16, 16)), small_chain, (8, 8, 8), _affine((8, 8, 8)),
+                       on_outside="ignore", unroll=unroll)
     folded = compose_chain(small_chain, (8, 8, 8), _affine((8, 8, 8)), on_outside="ignore")
     resample_volume(raw[:16, :16, :16], _affine((16, 16, 16)), folded.disp_ras_mm, _affine((8, 8, 8)),
                     jacobian=folded.factor)
 
     stages = ("warp", "correct", "grown warp", "correct interior", "once", "once generic", "coarse warp",
-              "once coarse", "compose", "apply")
+              "once coarse", "compose", "apply", "sitk")
     wall = {s: [] for s in stages}
     cpu = {s: [] for s in stages}
 
@@ -146,7 +182,17 @@ def main() -> None:
         cpu[stage].append(c)
         return out
 
-    agreement = uncovered = coarse_gap = 0.0
+    import SimpleITK as sitk
+
+    scratch = tempfile.TemporaryDirectory()
+    grown0 = compute_warp(coil, grown_shape, grown_aff, frame)
+    sitk_raw, sitk_target, composite = _sitk_peer(Path(scratch.name), raw, raw_aff, target_aff, shape,
+                                                  warp_w, matrix, grown0)
+    no_factor = resample_chain(raw, raw_aff, [FieldStep(warp_w, target_aff), AffineStep(matrix),
+                                              FieldStep(grown0.disp_ras_mm, grown0.affine)],
+                               shape, target_aff, on_outside="ignore").data
+    del grown0
+    agreement = uncovered = coarse_gap = sitk_gap = 0.0
     for _ in range(args.repeats):
         warp = record("warp", lambda: compute_warp(coil, shape, raw_aff, frame))
         record("correct", lambda w=warp: correct_image(raw, raw_aff, w))
@@ -171,6 +217,9 @@ def main() -> None:
         two = record("apply", lambda f=composed: resample_volume(raw, raw_aff, f.disp_ras_mm, target_aff,
                                                                   jacobian=f.factor))
         agreement = max(agreement, float(np.abs(once.data - two).max()))
+        peer = record("sitk", lambda: sitk.Resample(sitk_raw, sitk_target, composite, sitk.sitkBSpline, 0.0))
+        sitk_gap = float(np.percentile(np.abs(sitk.GetArrayFromImage(peer).T - no_factor), 99.9))
+        del peer
         uncovered = once.uncovered_fraction
         del warp, grown, inner, chain, once, composed, two, coarse, coarse_chain, once_coarse
 
@@ -188,7 +237,8 @@ def main() -> None:
               "once generic": "  the same, generic program",
               "coarse warp": f"compute_warp, grown grid at {COARSE_MM:g} mm",
               "once coarse": f"resample_chain, {COARSE_MM:g} mm field",
-              "compose": "compose_chain (stored field)", "apply": "resample_volume through it"}
+              "compose": "compose_chain (stored field)", "apply": "resample_volume through it",
+              "sitk": "SimpleITK Resample, composite [W, A, G]"}
     for s in stages:
         print(f"{labels[s]:38s} {med_w[s]:8.2f} {med_c[s]:8.2f}")
 
@@ -208,13 +258,16 @@ def main() -> None:
             ("two-pass / plain, with the warps", ("grown warp", "compose", "apply"), plain),
             ("two-pass / plain, fields given", ("compose", "apply"), plain),
             ("once / correct_image (resampling alone)", ("once",), ("correct",)),
-            ("unrolled / generic program (one pass)", ("once",), ("once generic",))]
+            ("unrolled / generic program (one pass)", ("once",), ("once generic",)),
+            ("once / SimpleITK composite (peer)", ("once",), ("sitk",))]
     print(f"{'ratio (target ' + str(TARGET_RATIO) + ')':46s} {'wall':>6s} {'cpu':>6s}")
     for label, parts, base in rows:
         rw, rc = ratios(parts, base)
         print(f"{label:46s} {rw:6.2f} {rc:6.2f}")
     print(f"one pass vs two-pass: largest difference {agreement:.2e} (intensities ~100)")
     print(f"uncovered target points: {100 * uncovered:.3f} %")
+    print(f"SimpleITK vs our one pass without the Jacobian factor: 99.9th percentile of the "
+          f"difference {sitk_gap:.2e} (intensities ~100)")
     print(f"one pass with the {COARSE_MM:g} mm field vs the 1 mm one: 99.9th percentile of the "
           f"difference {coarse_gap:.2e} (intensities ~100)")
 
