@@ -244,7 +244,8 @@ def field_grid_summary(field: WarpField, warp: WarpField, margin_mm: float, seed
     The deviation is measured at :data:`FIELD_CHECK_VOXELS` image voxels drawn
     at random (all of them if fewer): the field sampled there trilinearly, as
     ITK's ``DisplacementFieldTransform`` reads it, minus the warp the image
-    was corrected with; 0 when the image's grid is part of the field's.
+    was corrected with; 0 (up to rounding) when the image's grid is part of
+    the field's.
     """
     n = int(np.prod(warp.shape))
     picks = np.random.default_rng(seed).choice(n, min(n, FIELD_CHECK_VOXELS), replace=False)
