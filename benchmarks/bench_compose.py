@@ -16,8 +16,7 @@
 * **two-pass** (for reference): the composed field stored on the target grid
   (:func:`~nl_unwarp.compose.compose_chain`), then resampled through
   (:func:`~nl_unwarp.resample.resample_volume`), as a tool that needs the
-  field file would do.
-
+  field file would do;
 * **SimpleITK** (the peer): ``sitk.Resample`` of the raw image onto the
   target grid through a ``CompositeTransform`` of the same ``W``, ``A`` and
   ``G`` read from the files we write (cubic B-spline, ``sitkBSpline``; ITK
@@ -31,16 +30,17 @@ so that the load of a shared machine falls on all alike; the tables give the
 median wall time and the median CPU time (user + system of the process, all
 threads) per stage. On a busy machine the CPU time is the steadier figure.
 
-Target: once / plain <= 1.25. Three readings are printed: with the warps (the
+Target: once / plain <= 1.25. Three readings are printed for the 1 mm field: with the warps (the
 composable field computed in the timed section, on its larger grid, against
 the plain correction's warp on the raw grid), with the fields given (the
 composable field exists, as in a pipeline that made it for registration),
 and against a plain correction that writes its composable field too
 (``nl-unwarp correct --out-field``: the grown warp, its interior used for the
 image), which is what a pipeline that composes later runs first; and the
-first two again with the 2 mm field (a plain correction writing a 2 mm field
+three again with the 2 mm field (a plain correction writing a 2 mm field
 computes the 1 mm warp of the image and the 2 mm field: one more warp stage).
-Nothing is asserted.
+The last row is the peer's: our one pass against SimpleITK's. Nothing is
+asserted.
 
 Usage: python benchmarks/bench_compose.py [--repeats N] [--quick]
 """
