@@ -9,6 +9,7 @@ from __future__ import annotations
 import argparse
 import json
 import logging
+import math
 import sys
 import time
 from pathlib import Path
@@ -384,6 +385,9 @@ def build_bids_app_parser() -> argparse.ArgumentParser:
     g.add_argument("--no-jacobian", action="store_true", help="do not multiply by the Jacobian determinant")
     g.add_argument("--emit-warp-for-skipped", action="store_true",
                    help="write the field and Jacobian map also for images the scanner corrected in 3D")
+    g.add_argument("--field-spacing", type=float, metavar="MM",
+                   help="voxel size of the field files' grids, mm (default: each image's voxels); "
+                        "the images are resampled through those files, read trilinearly")
     g = p.add_argument_group("execution")
     g.add_argument("-w", "--work-dir", help="nipype work directory (cache; default: beside OUTPUT_DIR)")
     g.add_argument("--plugin", default="MultiProc", help=PLUGINS_HELP)
@@ -449,6 +453,9 @@ def _cmd_bids_app(args, progress: _Progress) -> None:
     options.n_procs, options.omp_nthreads = args.nprocs, args.omp_nthreads
     options.order, options.jacobian = args.order, not args.no_jacobian
     options.emit_warp_for_skipped = args.emit_warp_for_skipped
+    if args.field_spacing is not None and not (math.isfinite(args.field_spacing) and args.field_spacing > 0):
+        raise InputError("--field-spacing", f"{args.field_spacing}: give a voxel size > 0 mm")
+    options.field_spacing_mm = args.field_spacing
     options.progress = progress.nodes
     progress.step(f"indexing {args.bids_dir} and deciding per image")
     plan = build_plan(options)

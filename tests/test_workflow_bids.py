@@ -204,3 +204,26 @@ def test_top_level_pipeline_script_builds(study, tmp_path):
                                      tmp_path / "work")
     assert len(plan.rows) == 3 * IMAGES_PER_SESSION
     assert sum(n.endswith("_sink") for n in workflow.list_node_names()) == len(plan.rows) - 1
+
+
+def test_bids_app_field_spacing(study, tmp_path, capsys):
+    """``--field-spacing``: the field derivative at that voxel size (nibabel reads its header),
+    recorded in the provenance parameters and in the image workflow's methods text; a voxel size
+    <= 0 is refused naming the flag, before anything is written."""
+    from nl_unwarp.workflows.unwarp import init_unwarp_wf
+
+    assert "stored on a 3 mm grid" in init_unwarp_wf(field_spacing_mm=3.0).__desc__
+    assert "stored on a" not in init_unwarp_wf().__desc__
+    args = [str(study.root), str(tmp_path / "out"), "participant", "--site-config", str(study.site_config),
+            "-w", str(tmp_path / "work"), "--plugin", "Linear", "--participant-label", "01",
+            "--session-label", "1", "--suffix", "T1w", "--quiet"]
+    assert main(args + ["--field-spacing", "0"]) == 1
+    assert "--field-spacing" in capsys.readouterr().err and not (tmp_path / "out").exists()
+    assert main(args + ["--field-spacing", "3"]) == 0
+    out = tmp_path / "out"
+    field = nib.load(out / derivative_name(T1W, "field"))
+    np.testing.assert_allclose(field.header.get_zooms()[:3], 3.0, rtol=1e-6)
+    sidecar = json.loads((out / derivative_name(T1W, "corrected", ext=".json")).read_text())
+    assert sidecar["NLUnwarpProvenance"]["parameters"]["field_spacing_mm"] == 3.0
+    corrected = np.asarray(nib.load(out / derivative_name(T1W, "corrected")).dataobj)
+    assert np.isfinite(corrected).all() and corrected.max() > 0.5

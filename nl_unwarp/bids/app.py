@@ -51,6 +51,8 @@ class RunOptions:
     order: int = 3
     jacobian: bool = True
     emit_warp_for_skipped: bool = False
+    #: Voxel size (mm) of the field files' grids; None: each image's voxels.
+    field_spacing_mm: float | None = None
     #: Called as ``progress(done, total)`` each time a workflow node finishes.
     progress: Callable[[int, int], None] | None = None
 
@@ -309,7 +311,8 @@ def run(options: RunOptions, *, plan: Plan | None = None) -> tuple[list[dict], l
     workflow = init_bids_unwarp_wf(plan=plan, output_dir=output_dir, site_config=options.site_config,
                                    coil_override=options.coil_override, jacobian=options.jacobian,
                                    order=options.order,
-                                   emit_warp_for_skipped=options.emit_warp_for_skipped)
+                                   emit_warp_for_skipped=options.emit_warp_for_skipped,
+                                   field_spacing_mm=options.field_spacing_mm)
     workflow.base_dir = str(work_dir)
     crash_dir = work_dir / "crash"
     nipype_config.update_config({"execution": {"crashdump_dir": str(crash_dir), "hash_method": "content",

@@ -19,7 +19,8 @@ def image_workflow_name(relpath: str) -> str:
 def init_bids_unwarp_wf(*, plan, output_dir: str | Path, site_config: str | Path | None = None,
                         coil_override: str | Path | None = None, jacobian: bool = True,
                         order: int = 3, emit_warp_for_skipped: bool = False,
-                        reports: bool = True, name: str = "bids_unwarp_wf"):
+                        field_spacing_mm: float | None = None, reports: bool = True,
+                        name: str = "bids_unwarp_wf"):
     """Correct every planned image of a dataset and write the derivatives.
 
     Parameters
@@ -36,6 +37,8 @@ def init_bids_unwarp_wf(*, plan, output_dir: str | Path, site_config: str | Path
     emit_warp_for_skipped : bool
         For images the scanner corrected in 3D, still write the field and
         Jacobian map (no corrected image).
+    field_spacing_mm : float, optional
+        Voxel size of the field files' grids (default: each image's voxels).
     reports : bool
         Write each image's HTML quality report into ``<output_dir>/reports/``.
     name : str
@@ -53,6 +56,8 @@ def init_bids_unwarp_wf(*, plan, output_dir: str | Path, site_config: str | Path
 
     workflow = pe.Workflow(name=name)
     parameters = {"interpolation_order": order, "jacobian": jacobian}
+    if field_spacing_mm is not None:
+        parameters["field_spacing_mm"] = field_spacing_mm
     for row in plan.rows:
         if row.problem:
             raise ValueError(f"{row.relpath}: {row.problem} (call plan.raise_problems() first)")
@@ -64,7 +69,7 @@ def init_bids_unwarp_wf(*, plan, output_dir: str | Path, site_config: str | Path
             continue
         label = image_workflow_name(row.relpath)
         image_wf = init_unwarp_wf(resample=not skipped, jacobian=jacobian, order=order,
-                                  name=f"{label}_wf")
+                                  field_spacing_mm=field_spacing_mm, name=f"{label}_wf")
         inputs = image_wf.get_node("inputnode").inputs
         inputs.in_file = row.path
         inputs.metadata = row.metadata

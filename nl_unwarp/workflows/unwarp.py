@@ -17,10 +17,15 @@ METHODS = (
     "table position, and the image was resampled once through it with B-spline interpolation of "
     "order {order}{jacobian}."
 )
+#: Added to METHODS when the field file is on a grid of its own.
+METHODS_FIELD_SPACING = (
+    " The displacement field was stored on a {spacing:g} mm grid extending {margin:g} mm beyond "
+    "the image and the image was resampled through it (trilinear between its nodes)."
+)
 
 
 def init_unwarp_wf(*, resample: bool = True, jacobian: bool = True, order: int = 3,
-                   name: str = "unwarp_wf"):
+                   field_spacing_mm: float | None = None, name: str = "unwarp_wf"):
     """Correct one image for gradient nonlinearity, as its sidecar and site policy say.
 
     Parameters
@@ -32,6 +37,10 @@ def init_unwarp_wf(*, resample: bool = True, jacobian: bool = True, order: int =
         Multiply by the Jacobian determinant.
     order : int
         B-spline interpolation order.
+    field_spacing_mm : float, optional
+        Voxel size of the field file's grid (default: the image's voxels); the
+        image is resampled through that file, so a coarser grid adds its
+        trilinear deviation (in the summary) to the correction.
     name : str
 
     Inputs
@@ -57,6 +66,7 @@ def init_unwarp_wf(*, resample: bool = True, jacobian: bool = True, order: int =
         The decision record (action, reason, rule, site, warnings).
     """
     from nl_unwarp import __version__
+    from nl_unwarp.compose import FIELD_MARGIN_MM
     from nl_unwarp.interfaces.bids import DecideCorrection
     from nl_unwarp.interfaces.warp import ApplyWarp, MakeWarp
 
@@ -64,6 +74,8 @@ def init_unwarp_wf(*, resample: bool = True, jacobian: bool = True, order: int =
     workflow.__desc__ = METHODS.format(version=__version__, order=order,
                                        jacobian=", scaling intensities by the Jacobian determinant"
                                        if jacobian else "")
+    if field_spacing_mm is not None:
+        workflow.__desc__ += METHODS_FIELD_SPACING.format(spacing=field_spacing_mm, margin=FIELD_MARGIN_MM)
     inputnode = pe.Node(niu.IdentityInterface(
         fields=["in_file", "metadata", "site_config", "coil_override", "isocenter_offset_mm"]),
         name="inputnode")
@@ -71,6 +83,8 @@ def init_unwarp_wf(*, resample: bool = True, jacobian: bool = True, order: int =
         fields=["corrected", "field", "jacobian", "magnitude", "summary", "decision"]), name="outputnode")
     decide = pe.Node(DecideCorrection(), name="decide")
     make_warp = pe.Node(MakeWarp(), name="make_warp")
+    if field_spacing_mm is not None:
+        make_warp.inputs.field_spacing_mm = field_spacing_mm
     workflow.connect([
         (inputnode, decide, [("in_file", "in_file"), ("metadata", "metadata"),
                              ("site_config", "site_config"), ("coil_override", "coil_override"),
