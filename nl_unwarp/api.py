@@ -24,14 +24,16 @@ from .io.coilfile import coil_sha256, load_coil
 from .io.itk import write_itk_field
 from .io.nifti import LoadedImage, load_image, write_image
 from .resample import correct_image
-from .warp import WarpField, compute_warp, default_slice_axis
+from .warp import WarpField, compute_warp, default_slice_axis, index_to_ras
 
 __all__ = [
     "FIELD_MARGIN_MM",
     "FrameSpec",
     "WarpOutputs",
+    "check_field_spacing",
     "correct_file",
     "displacement_table",
+    "field_grid_summary",
     "make_frame",
     "warp_file",
     "warp_summary",
@@ -109,9 +111,13 @@ class WarpOutputs:
     def __post_init__(self) -> None:
         if not np.isfinite(self.field_margin_mm) or self.field_margin_mm < 0:
             raise InputError("--field-margin", f"{self.field_margin_mm}: give a margin >= 0 mm")
-        if self.field_spacing_mm is not None and not (np.isfinite(self.field_spacing_mm)
-                                                      and self.field_spacing_mm > 0):
-            raise InputError("--field-spacing", f"{self.field_spacing_mm}: give a voxel size > 0 mm")
+        check_field_spacing(self.field_spacing_mm)
+
+
+def check_field_spacing(spacing_mm: float | None) -> None:
+    """Refuse a field voxel size (mm) that is given and is not a finite number > 0."""
+    if spacing_mm is not None and not (np.isfinite(spacing_mm) and spacing_mm > 0):
+        raise InputError("--field-spacing", f"{spacing_mm}: give a voxel size > 0 mm")
 
 
 def displacement_table(coil: CoilModel, radii_mm=(50.0, 100.0, 150.0, 200.0),
@@ -216,14 +222,11 @@ def _warp_for(image: LoadedImage, coil: CoilModel, frame_spec: FrameSpec, mode: 
     if slice_axis is None and mode != "full":
         slice_axis = default_slice_axis(image.affine)
     shape, affine = image.spatial_shape, image.affine
-    if spacing_mm is not None:
+    if margin_mm > 0 or spacing_mm is not None:
         field = compute_warp(coil, *grid_with_margin(shape, affine, margin_mm, spacing_mm), frame, mode=mode,
                              slice_axis=slice_axis)
-        warp = compute_warp(coil, shape, affine, frame, mode=mode, slice_axis=slice_axis)
-    elif margin_mm > 0:
-        field = compute_warp(coil, *grid_with_margin(shape, affine, margin_mm), frame, mode=mode,
-                             slice_axis=slice_axis)
-        warp = _interior(field, shape, affine)
+        warp = (_interior(field, shape, affine) if spacing_mm is None
+                else compute_warp(coil, shape, affine, frame, mode=mode, slice_axis=slice_axis))
     else:
         warp = field = compute_warp(coil, shape, affine, frame, mode=mode, slice_axis=slice_axis)
     _warn_outside(warp, image.path)
@@ -249,10 +252,9 @@ def field_grid_summary(field: WarpField, warp: WarpField, margin_mm: float, seed
     """
     n = int(np.prod(warp.shape))
     picks = np.random.default_rng(seed).choice(n, min(n, FIELD_CHECK_VOXELS), replace=False)
-    ijk = np.stack(np.unravel_index(picks, warp.shape), -1).astype(float)
-    points = ijk @ warp.affine[:3, :3].T + warp.affine[:3, 3]
-    read, _ = sample_field(FieldStep(field.disp_ras_mm, field.affine), points)
-    exact = np.asarray(warp.disp_ras_mm)[tuple(ijk.astype(int).T)]
+    ijk = np.stack(np.unravel_index(picks, warp.shape), -1)
+    read, _ = sample_field(FieldStep(field.disp_ras_mm, field.affine), index_to_ras(warp.affine, ijk))
+    exact = np.asarray(warp.disp_ras_mm)[tuple(ijk.T)]
     return {"shape": [int(v) for v in field.shape],
             "spacing_mm": [float(v) for v in np.linalg.norm(field.affine[:3, :3], axis=0)],
             "margin_mm": float(margin_mm),

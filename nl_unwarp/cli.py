@@ -9,7 +9,6 @@ from __future__ import annotations
 import argparse
 import json
 import logging
-import math
 import sys
 import time
 from pathlib import Path
@@ -445,6 +444,7 @@ def _cmd_plan(args, progress: _Progress) -> None:
 
 
 def _cmd_bids_app(args, progress: _Progress) -> None:
+    from .api import check_field_spacing
     from .bids.app import build_plan, run
 
     options = _bids_options(args)
@@ -453,8 +453,7 @@ def _cmd_bids_app(args, progress: _Progress) -> None:
     options.n_procs, options.omp_nthreads = args.nprocs, args.omp_nthreads
     options.order, options.jacobian = args.order, not args.no_jacobian
     options.emit_warp_for_skipped = args.emit_warp_for_skipped
-    if args.field_spacing is not None and not (math.isfinite(args.field_spacing) and args.field_spacing > 0):
-        raise InputError("--field-spacing", f"{args.field_spacing}: give a voxel size > 0 mm")
+    check_field_spacing(args.field_spacing)
     options.field_spacing_mm = args.field_spacing
     options.progress = progress.nodes
     progress.step(f"indexing {args.bids_dir} and deciding per image")
