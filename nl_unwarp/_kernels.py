@@ -594,6 +594,9 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
                         miss = True
                 x, y, z = _point(matrix, x, y, z)
                 f = 1.0
+                if use_jac and not jac_lattice:  # J on its own grid, sampled where G is
+                    ji, jj, jk = _point(jac_map, x, y, z)
+                    f = _factor_at(jac, jx, jy, jz, ji, jj, jk)
                 if use_last:
                     gi, gj, gk = _point(last_map, x, y, z)
                     if -0.5 <= gi <= gx - 0.5 and -0.5 <= gj <= gy - 0.5 and -0.5 <= gk <= gz - 0.5:
@@ -608,18 +611,12 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
                             if not same_cells:
                                 o, di, dj, dk = _cell(jx, jy, jz, bi + ox, bj + oy, bk + oz)
                             f = _blend(jac, o, di, dj, dk, ti, tj_, tk_)
-                        elif use_jac:
-                            ji, jj, jk = _point(jac_map, x, y, z)
-                            f = _factor_at(jac, jx, jy, jz, ji, jj, jk)
                         x += dx
                         y += dy
                         z += dz
                     else:
                         if use_jac and jac_lattice:
                             f = _factor_at(jac, jx, jy, jz, gi + ox, gj + oy, gk + oz)
-                        elif use_jac:
-                            ji, jj, jk = _point(jac_map, x, y, z)
-                            f = _factor_at(jac, jx, jy, jz, ji, jj, jk)
                         miss = True
                 ends[i, 0], ends[i, 1], ends[i, 2] = _point(raw_map, x, y, z)
                 ends[i, 3] = f
