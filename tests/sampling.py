@@ -24,6 +24,13 @@ def inside_fov(coords, raw_shape):
     return ok
 
 
+def sitk_points(transform, points_ras):
+    """A SimpleITK transform applied to (N, 3) RAS points: ITK maps LPS points, so convert at the
+    boundary (CONVENTIONS.md section 1)."""
+    lps = np.array([-1.0, -1.0, 1.0])
+    return np.array([transform.TransformPoint(tuple(map(float, p * lps))) for p in points_ras]) * lps
+
+
 def oblique_affine(shape, zooms, euler_deg, centre_mm):
     """Voxel -> RAS affine: rotated (x-y-z Euler, degrees), scaled, centred at ``centre_mm``."""
     rot = Rotation.from_euler("xyz", euler_deg, degrees=True).as_matrix()

@@ -16,6 +16,7 @@ import shutil
 import nibabel as nib
 import numpy as np
 import pytest
+from sampling import oblique_affine, sitk_points
 
 from nl_unwarp.api import FrameSpec, WarpOutputs, correct_file, make_frame, warp_file, warp_summary
 from nl_unwarp.demo import demo_coil_path
@@ -184,11 +185,7 @@ def test_coarse_field_of_an_oblique_slab_as_simpleitk_reads_it(tmp_path):
     from nl_unwarp.warp import slice_normal_ras
 
     shape = (36, 30, 3)
-    a = np.deg2rad(17.0)
-    rot = np.array([[np.cos(a), 0.0, np.sin(a)], [0.0, 1.0, 0.0], [-np.sin(a), 0.0, np.cos(a)]])
-    affine = np.eye(4)
-    affine[:3, :3] = rot @ np.diag([1.6, 1.8, 5.0])
-    affine[:3, 3] = [-30.0, -25.0, 40.0]
+    affine = oblique_affine(shape, (1.6, 1.8, 5.0), (0.0, 17.0, 0.0), (-1.8, 1.1, 36.6))
     nib.save(nib.Nifti1Image(np.ones(shape, np.float32), affine), tmp_path / "slab.nii.gz")
     offset = (5.0, -10.0, 30.0)
     summary = warp_file(tmp_path / "slab.nii.gz", demo_coil_path(),
@@ -204,9 +201,7 @@ def test_coarse_field_of_an_oblique_slab_as_simpleitk_reads_it(tmp_path):
         sitk.ReadImage(str(tmp_path / "f.nii.gz"), sitk.sitkVectorFloat64))
     ijk = np.stack(np.meshgrid(*[np.arange(n, dtype=float) for n in shape], indexing="ij"), -1).reshape(-1, 3)
     points = ijk @ affine[:3, :3].T + affine[:3, 3]
-    lps = points * [-1.0, -1.0, 1.0]
-    moved = np.array([transform.TransformPoint(tuple(p)) for p in lps]) * [-1.0, -1.0, 1.0]
-    read = moved - points
+    read = sitk_points(transform, points) - points
     exact = np.asarray(direct.disp_ras_mm).reshape(-1, 3)
     # 2e-5 mm: the file's float32 vectors.
     assert np.abs(read - exact).max() <= grid["deviation_max_mm"] + 2e-5

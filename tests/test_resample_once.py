@@ -29,6 +29,7 @@ import nibabel as nib
 import numpy as np
 import pytest
 import SimpleITK as sitk
+from sampling import sitk_points
 from scipy import ndimage
 
 from nl_unwarp.api import FIELD_MARGIN_MM, FrameSpec, WarpOutputs, warp_file
@@ -445,8 +446,7 @@ def test_cli_field_at_another_spacing_as_simpleitk_reads_it(case, tmp_path, caps
     itk_field = sitk.ReadImage(str(field), sitk.sitkVectorFloat64)
     transform = sitk.DisplacementFieldTransform(sitk.Image(itk_field))
     points = _grid_points(RAW_SHAPE, _raw_affine()).reshape(-1, 3)
-    lps = points * [-1.0, -1.0, 1.0]
-    moved = np.array([transform.TransformPoint(tuple(p)) for p in lps]) * [-1.0, -1.0, 1.0]
+    moved = sitk_points(transform, points)
     direct = compute_warp(load_coil(demo_coil_path()), RAW_SHAPE, _raw_affine(),
                           DeviceFrame("HFS", ISOCENTER_OFFSET_MM))
     exact = np.asarray(direct.disp_ras_mm).reshape(-1, 3)  # logical order, as the points

@@ -15,6 +15,7 @@ import numpy as np
 import pytest
 import scipy.io
 import SimpleITK as sitk
+from sampling import sitk_points
 
 import nl_unwarp.io.itk as itk_module
 from nl_unwarp.compose import AffineStep, FieldStep, compose_chain
@@ -68,11 +69,6 @@ def _smooth_field(shape, seed: int, amplitude_mm: float = 3.0) -> np.ndarray:
                      for c in range(3)], -1).astype(np.float32)
 
 
-def _sitk_points(transform, points_ras):
-    """ITK maps LPS points: convert at the boundary."""
-    return np.array([transform.TransformPoint(tuple(map(float, p * LPS))) for p in points_ras]) * LPS
-
-
 def _points(seed: int, n: int = 40, spread_mm: float = 12.0) -> np.ndarray:
     return np.random.default_rng(seed).uniform(-spread_mm, spread_mm, (n, 3))
 
@@ -98,7 +94,7 @@ def test_affine_written_is_read_by_simpleitk_and_antspyx(tmp_path, suffix):
     pts = _points(2)
     expected = pts @ matrix[:3, :3].T + matrix[:3, 3]
     # SimpleITK reads the file and maps LPS points (ITK's frame).
-    np.testing.assert_allclose(_sitk_points(sitk.ReadTransform(str(path)), pts), expected,
+    np.testing.assert_allclose(sitk_points(sitk.ReadTransform(str(path)), pts), expected,
                                atol=POINT_TOL_MM)
     ants_tx = ants.read_transform(str(path))
     got = np.array([ants_tx.apply_to_point(tuple(p * LPS)) for p in pts]) * LPS
@@ -118,7 +114,7 @@ def test_affine_with_centre_written_by_simpleitk_is_read(tmp_path, suffix):
     sitk.WriteTransform(tx, str(path))
     matrix = tio.read_itk_affine(path)
     pts = _points(3)
-    np.testing.assert_allclose(pts @ matrix[:3, :3].T + matrix[:3, 3], _sitk_points(tx, pts),
+    np.testing.assert_allclose(pts @ matrix[:3, :3].T + matrix[:3, 3], sitk_points(tx, pts),
                                atol=POINT_TOL_MM)
 
 
@@ -163,7 +159,7 @@ def test_linear_types_written_by_simpleitk_are_read(tmp_path, kind, suffix):
     sitk.WriteTransform(tx, str(path))
     matrix = tio.read_itk_affine(path)
     pts = _points(5, spread_mm=40.0)
-    expected = _sitk_points(tx, pts)
+    expected = sitk_points(tx, pts)
     np.testing.assert_allclose(pts @ matrix[:3, :3].T + matrix[:3, 3], expected, atol=POINT_TOL_MM)
     assert np.abs(expected - pts).max() > 1.0  # not an identity
     # The same through the chain loader.
@@ -179,7 +175,7 @@ def test_composite_text_file_written_by_simpleitk_is_a_chain(tmp_path):
     chain = tio.load_chain(path)
     assert len(chain) == 3
     pts = _points(6, spread_mm=40.0)
-    expected = _sitk_points(reference, pts)
+    expected = sitk_points(reference, pts)
     np.testing.assert_allclose(_chain_points(chain, pts), expected, atol=POINT_TOL_MM)
     matrix = tio.read_itk_affine(path)  # the composite's product
     np.testing.assert_allclose(pts @ matrix[:3, :3].T + matrix[:3, 3], expected, atol=POINT_TOL_MM)
@@ -194,7 +190,7 @@ def test_composite_h5_with_linear_members_is_read(tmp_path):
     sitk.WriteTransform(sitk.CompositeTransform(members), str(path))
     pts = _points(7, spread_mm=40.0)
     np.testing.assert_allclose(_chain_points(tio.load_chain(path), pts),
-                               _sitk_points(sitk.ReadTransform(str(path)), pts), atol=POINT_TOL_MM)
+                               sitk_points(sitk.ReadTransform(str(path)), pts), atol=POINT_TOL_MM)
 
 
 def test_ambiguous_and_unsupported_text_files_are_refused(tmp_path):
@@ -253,7 +249,7 @@ def test_composite_h5_is_read_by_simpleitk(tmp_path, kind):
     assert tx.GetName() == "CompositeTransform"
     pts = _points(8, spread_mm=10.0)
     # ITK applies the composite's last member first: our chain, in our order.
-    np.testing.assert_allclose(_sitk_points(tx, pts), _chain_points(chain, pts), atol=POINT_TOL_MM)
+    np.testing.assert_allclose(sitk_points(tx, pts), _chain_points(chain, pts), atol=POINT_TOL_MM)
 
 
 def test_composite_h5_is_read_by_antspyx(tmp_path):
@@ -307,7 +303,7 @@ def test_composite_written_by_simpleitk_is_read(tmp_path):
     chain = tio.read_itk_composite(path)
     assert [type(s) for s in chain] == [FieldStep, AffineStep]
     pts = _points(11, spread_mm=6.0) + np.array([-5.0, 4.0, 8.0])
-    ref = _sitk_points(sitk.ReadTransform(str(path)), pts)
+    ref = sitk_points(sitk.ReadTransform(str(path)), pts)
     np.testing.assert_allclose(_chain_points(chain, pts), ref, atol=POINT_TOL_MM)
 
 
