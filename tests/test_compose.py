@@ -254,7 +254,11 @@ def _unrolled_chain(shape_name, target_shape, target_affine):
     # A factor map on a grid of its own (our raw-grid Jacobian before a coarser field).
     own_factor = FactorStep(np.random.default_rng(15).uniform(0.8, 1.2, (11, 13, 9)),
                             _oblique((11, 13, 9), (1.7, 2.1, 2.4), 11.0, (2.0, -1.0, 1.5)))
+    # A field of one slice (a 2D acquisition's), 40 mm thick: no neighbour along its normal.
+    g_slice = _field((20, 22, 1), _oblique((20, 22, 1), (3.0, 3.0, 40.0), 12.0, (1.0, -2.0, 3.0)), 16,
+                     jacobian=True)
     return {"W, A, A, G+J": [w_nodes, a, _affine(4), g],
+            "A, G+J on one slice": [a, g_slice],
             "W (grown), A, G": [w_larger, a, g_bare],
             "A, G+J": [a, g],
             "G+J": [g],
@@ -263,8 +267,8 @@ def _unrolled_chain(shape_name, target_shape, target_affine):
             "W, A, J on its own grid, G": [w_nodes, a, own_factor, g_bare]}[shape_name]
 
 
-UNROLLED = ["W, A, A, G+J", "W (grown), A, G", "A, G+J", "G+J", "W, A", "W, A, J on G's lattice, G",
-            "W, A, J on its own grid, G"]
+UNROLLED = ["W, A, A, G+J", "A, G+J on one slice", "W (grown), A, G", "A, G+J", "G+J", "W, A",
+            "W, A, J on G's lattice, G", "W, A, J on its own grid, G"]
 
 
 @pytest.mark.parametrize("order", [0, 1, 3])
