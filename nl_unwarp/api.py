@@ -271,6 +271,15 @@ def _spacing(outputs: WarpOutputs | None) -> float | None:
     return outputs.field_spacing_mm if outputs is not None and outputs.field else None
 
 
+def _summary_with_field(warp: WarpField, field: WarpField, outputs: WarpOutputs | None, coil: CoilModel,
+                        coil_path: str | Path | None, frame: DeviceFrame, frame_origin: str) -> dict:
+    """:func:`warp_summary`, with ``field_grid`` if a composable field is written."""
+    summary = warp_summary(warp, coil, coil_path, frame, frame_origin)
+    if outputs is not None and outputs.field:
+        summary["field_grid"] = field_grid_summary(field, warp, _margin(outputs))
+    return summary
+
+
 def warp_file(reference: str | Path, coil: CoilModel | str | Path, outputs: WarpOutputs, *,
               frame: FrameSpec | None = None, mode: str = "full",
               slice_axis: int | None = None) -> dict:
@@ -285,9 +294,7 @@ def warp_file(reference: str | Path, coil: CoilModel | str | Path, outputs: Warp
     model, coil_path = _load_coil_any(coil)
     warp, field, dev_frame, origin = _warp_for(image, model, frame or FrameSpec(), mode, slice_axis,
                                                _margin(outputs), _spacing(outputs))
-    summary = warp_summary(warp, model, coil_path, dev_frame, origin)
-    if outputs.field:
-        summary["field_grid"] = field_grid_summary(field, warp, _margin(outputs))
+    summary = _summary_with_field(warp, field, outputs, model, coil_path, dev_frame, origin)
     with OutputSet() as out:
         _write_warp(out, warp, outputs, summary, field)
     return summary
@@ -327,9 +334,7 @@ def correct_file(
         data = data.astype(np.float32)
     result = correct_image(data, image.affine, warp, order=order, jacobian=jacobian, fill=fill,
                            keep_dtype=keep_dtype, progress=progress)
-    summary = warp_summary(warp, model, coil_path, dev_frame, origin)
-    if warp_outputs is not None and warp_outputs.field:
-        summary["field_grid"] = field_grid_summary(field, warp, _margin(warp_outputs))
+    summary = _summary_with_field(warp, field, warp_outputs, model, coil_path, dev_frame, origin)
     summary["correction"] = {"order": order, "jacobian": jacobian, "fill": fill,
                              "keep_dtype": keep_dtype, "volumes": int(np.prod(data.shape[3:]))}
     with OutputSet() as out:
