@@ -13,6 +13,10 @@
 * **once, coarse field**: the same with our field on a 2 mm grid
   (``--field-spacing 2``: the field file a pipeline that composes later
   would ask for), read trilinearly in the chain;
+* **once, coarse field, J on the raw grid**: the same 2 mm field with the
+  Jacobian map on the raw image's grid as a factor step before it, the layout
+  the BIDS app and ``nl-unwarp compose --jacobian-map`` use (``J`` is then
+  interpolated on its own grid);
 * **two-pass** (for reference): the composed field stored on the target grid
   (:func:`~nl_unwarp.compose.compose_chain`), then resampled through
   (:func:`~nl_unwarp.resample.resample_volume`), as a tool that needs the
@@ -39,7 +43,8 @@ and against a plain correction that writes its composable field too
 image), which is what a pipeline that composes later runs first; and the
 three again with the 2 mm field (a plain correction writing a 2 mm field
 computes the 1 mm warp of the image and the 2 mm field: one more warp stage).
-The last row is the peer's: our one pass against SimpleITK's. Nothing is
+One more row gives the last reading with the Jacobian map on the raw grid
+(the BIDS app's layout). The last row is the peer's: our one pass against SimpleITK's. Nothing is
 asserted.
 
 Usage: python benchmarks/bench_compose.py [--repeats N] [--quick]
@@ -130,6 +135,7 @@ def main() -> None:
     from nl_unwarp.compose import (
         FIELD_MARGIN_MM,
         AffineStep,
+        FactorStep,
         FieldStep,
         compose_chain,
         grid_with_margin,
@@ -172,7 +178,7 @@ def main() -> None:
                     jacobian=folded.factor)
 
     stages = ("warp", "correct", "grown warp", "correct interior", "once", "once generic", "coarse warp",
-              "once coarse", "compose", "apply", "sitk")
+              "once coarse", "once coarse J raw", "compose", "apply", "sitk")
     wall = {s: [] for s in stages}
     cpu = {s: [] for s in stages}
 
@@ -209,6 +215,10 @@ def main() -> None:
         coarse_chain = chain_of(coarse)
         once_coarse = record("once coarse", lambda c=coarse_chain: resample_chain(
             raw, raw_aff, c, shape, target_aff, on_outside="ignore"))
+        raw_j_chain = [FieldStep(warp_w, target_aff), AffineStep(matrix), FactorStep(warp.jacobian, raw_aff),
+                       FieldStep(coarse.disp_ras_mm, coarse.affine)]
+        record("once coarse J raw", lambda c=raw_j_chain: resample_chain(raw, raw_aff, c, shape, target_aff,
+                                                                          on_outside="ignore"))
         # Voxels whose end point crosses the raw image's edge between the two fields jump to the
         # fill value: the percentile shows the interior.
         coarse_gap = float(np.percentile(np.abs(once_coarse.data - once.data), 99.9))
@@ -221,7 +231,7 @@ def main() -> None:
         sitk_gap = float(np.percentile(np.abs(sitk.GetArrayFromImage(peer).T - no_factor), 99.9))
         del peer
         uncovered = once.uncovered_fraction
-        del warp, grown, inner, chain, once, composed, two, coarse, coarse_chain, once_coarse
+        del warp, grown, inner, chain, once, composed, two, coarse, coarse_chain, once_coarse, raw_j_chain
 
     med_w = {s: statistics.median(v) for s, v in wall.items()}
     med_c = {s: statistics.median(v) for s, v in cpu.items()}
@@ -237,6 +247,7 @@ def main() -> None:
               "once generic": "  the same, generic program",
               "coarse warp": f"compute_warp, grown grid at {COARSE_MM:g} mm",
               "once coarse": f"resample_chain, {COARSE_MM:g} mm field",
+              "once coarse J raw": "  the same, J on the raw grid",
               "compose": "compose_chain (stored field)", "apply": "resample_volume through it",
               "sitk": "SimpleITK Resample, composite [W, A, G]"}
     for s in stages:
@@ -254,6 +265,8 @@ def main() -> None:
             (f"once / plain, with the warps, {COARSE_MM:g} mm field", ("coarse warp", "once coarse"), plain),
             (f"once / plain, fields given, {COARSE_MM:g} mm field", ("once coarse",), plain),
             (f"once / plain writing its {COARSE_MM:g} mm field", ("coarse warp", "once coarse"),
+             ("warp", "correct", "coarse warp")),
+            ("  the same, J on the raw grid (BIDS app)", ("coarse warp", "once coarse J raw"),
              ("warp", "correct", "coarse warp")),
             ("two-pass / plain, with the warps", ("grown warp", "compose", "apply"), plain),
             ("two-pass / plain, fields given", ("compose", "apply"), plain),
