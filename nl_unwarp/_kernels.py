@@ -519,75 +519,6 @@ def fold_chain_and_sample(coef, order, fill, target_map, raw_map, program, affin
             _sample_line(coef, order, fill, ends, j, k, out, missed, wx, wy, wz)
 
 
-@numba.njit(inline="always", cache=True)
-def _held_cell(g, n):
-    """Cell start and fraction of a finite continuous index ``g`` on an axis of ``n`` nodes,
-    with the value held at the edge nodes beyond them (corners clamped, as :func:`_cell`).
-
-    Beyond the first node the fraction is 0 at cell 0; beyond the last it is 1 at cell
-    ``n - 2``: the same corner values with both of their weights explicit, so that every point
-    of a line takes the same branch-free arithmetic (:func:`_blend_line`).
-    """
-    b = min(max(np.floor(g), 0.0), float(max(n - 2, 0)))
-    return np.int32(b), np.float32(min(max(g - b, 0.0), 1.0))
-
-
-@numba.njit(inline="always", cache=True)
-def _corner_steps(nx, ny, nz):
-    """Flat steps to a cell's other corners on an x-fastest grid, int32; 0 along an axis of one
-    node (its value held)."""
-    return (np.int32(1 if nx > 1 else 0), np.int32(nx if ny > 1 else 0), np.int32(nx * ny if nz > 1 else 0))
-
-
-@numba.njit(inline="always", cache=True)
-def _held_blend(v, o, di, dj, dk, ti, tj, tk):
-    """:func:`_blend` in float32, the buffers' type (rounding of about 1e-6 mm on displacements
-    of a few mm)."""
-    a00 = v[o] + ti * (v[o + di] - v[o])
-    a10 = v[o + dj] + ti * (v[o + dj + di] - v[o + dj])
-    a01 = v[o + dk] + ti * (v[o + dk + di] - v[o + dk])
-    a11 = v[o + dk + dj] + ti * (v[o + dk + dj + di] - v[o + dk + dj])
-    b0 = a00 + tj * (a10 - a00)
-    b1 = a01 + tj * (a11 - a01)
-    return b0 + tk * (b1 - b0)
-
-
-@numba.njit(inline="always", cache=True)
-def _blend_line(v, vol, nx, ny, nz, row, plane, steps, gi, gj, gk, out0, out1, out2, jac, with_jac, out_jac):
-    """Trilinear reads along a line at the finite continuous indices ``(gi, gj, gk)`` (values
-    held at the edges): the channels of ``v`` (stride ``vol``) into ``out0`` (and ``out1``,
-    ``out2`` if ``vol``), and ``jac`` on the same cells into ``out_jac`` if ``with_jac``.
-
-    The reads of a whole line are made in one tight loop, apart from the chain's other steps,
-    so that the processor overlaps the loads of neighbouring points. Against the point-by-point
-    reads (15 interleaved runs, 1 mm 256 x 256 x 176 target, medians): a J map on its own grid
-    before a 2 mm field, 24 % less time in the G and J reads; J on a 2 mm field's grid, 9 %
-    less; a 1 mm field, no gain (its reads wait on memory).
-    """
-    di, dj, dk = steps
-    if vol == 0:
-        for i in range(gi.size):
-            bi, ti = _held_cell(gi[i], nx)
-            bj, tj = _held_cell(gj[i], ny)
-            bk, tk = _held_cell(gk[i], nz)
-            out0[i] = _held_blend(v, bi + row * bj + plane * bk, di, dj, dk, ti, tj, tk)
-        return
-    for i in range(gi.size):
-        bi, ti = _held_cell(gi[i], nx)
-        bj, tj = _held_cell(gj[i], ny)
-        bk, tk = _held_cell(gk[i], nz)
-        o = bi + row * bj + plane * bk
-        out0[i] = _held_blend(v, o, di, dj, dk, ti, tj, tk)
-        out1[i] = _held_blend(v, o + vol, di, dj, dk, ti, tj, tk)
-        out2[i] = _held_blend(v, o + 2 * vol, di, dj, dk, ti, tj, tk)
-    if with_jac:
-        for i in range(gi.size):
-            bi, ti = _held_cell(gi[i], nx)
-            bj, tj = _held_cell(gj[i], ny)
-            bk, tk = _held_cell(gk[i], nz)
-            out_jac[i] = _held_blend(jac, bi + row * bj + plane * bk, di, dj, dk, ti, tj, tk)
-
-
 @numba.njit(parallel=True, cache=True, fastmath=FAST_MATH)
 def field_affine_field_sample(coef, order, fill, target_map, first, first_offset, use_first, matrix,
                               last, last_dims, last_map, use_last, jac, jac_dims, jac_offset, jac_lattice,
@@ -600,16 +531,14 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
     none); ``G`` (optional) a field read trilinearly (ITK's rule, identity and
     a flagged miss outside ``[-0.5, n - 0.5]``), with a factor map ``J``
     sampled where ``G`` is, held at edge values beyond ``J``'s grid: on
-    ``G``'s own grid it shares ``G``'s cells and weights, on ``G``'s lattice
-    (e.g. the raw grid inside the grown one) its index is ``G``'s plus an
-    offset (the ``STEP_FIELD_FACTOR`` rule), elsewhere (the raw grid and a
-    coarser field) it is mapped from the world point (the ``STEP_FACTOR``
-    rule). The rules are those of the generic kernel; the chain's parameters
-    are plain arguments rather than rows of a program, and each line is
-    followed in three passes (the chain up to ``G``; the reads of ``G`` and
-    ``J``, in float32, through one offset per cell; the end points), then
-    sampled (``benchmarks/bench_compose.py``). ``G`` and ``J`` hold fewer
-    than 2**31 values (:func:`nl_unwarp.compose._unrolled_arguments`).
+    ``G``'s lattice (its own grid, or e.g. the raw grid inside the grown one)
+    it shares ``G``'s weights (the ``STEP_FIELD_FACTOR`` rule), elsewhere (the
+    raw grid and a coarser field) it is interpolated on its own (the
+    ``STEP_FACTOR`` rule). The
+    arithmetic is that of the generic kernel, step for step; the chain's
+    parameters are plain arguments rather than rows of a program, and ``G``
+    is read from flat buffers through one offset per cell
+    (``benchmarks/bench_compose.py``).
 
     Parameters
     ----------
@@ -643,30 +572,15 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
     ox, oy, oz = jac_offset[0], jac_offset[1], jac_offset[2]
     # J on G's own grid (a FieldStep's jacobian) reads the same cells.
     same_cells = jac_lattice and jx == gx and jy == gy and jz == gz and ox == 0 and oy == 0 and oz == 0
-    own_jac = use_jac and not (use_last and same_cells)  # J interpolated on its own cells
-    # Corner steps (0 along an axis of one node) and the channel stride, int32 (the caller keeps
-    # the grids below 2**31 nodes).
-    g_steps, j_steps = _corner_steps(gx, gy, gz), _corner_steps(jx, jy, jz)
-    g_row, g_plane, j_row, j_plane = np.int32(gx), np.int32(gx * gy), np.int32(jx), np.int32(jx * jy)
-    vol = np.int32(gx * gy * gz)
+    vol = gx * gy * gz
     tj, tk = (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
     for tile in numba.prange(tj * tk):
         wx, wy, wz = np.empty(4), np.empty(4), np.empty(4)
         ends = np.empty((nx, 5))
-        # Per line: world points, G's and J's continuous indices (0 where unused), the blends.
-        px, py, pz = np.empty(nx), np.empty(nx), np.empty(nx)
-        gix, giy, giz = np.zeros(nx), np.zeros(nx), np.zeros(nx)
-        jix, jiy, jiz = np.zeros(nx), np.zeros(nx), np.zeros(nx)
-        bx, by, bz = np.empty(nx, np.float32), np.empty(nx, np.float32), np.empty(nx, np.float32)
-        bf = np.ones(nx, np.float32)
-        g_in = np.zeros(nx, np.bool_)
-        j_nan = np.zeros(nx, np.bool_)
-        w_miss = np.zeros(nx, np.bool_)
         for row in range(TILE * TILE):
             j, k = _tile_line(tile, row, tj)
             if j >= ny or k >= nz:
                 continue
-            # Pass 1: the chain up to G, and where G and J are read.
             for i in range(nx):
                 x, y, z = _point(target_map, i, j, k)
                 miss = False
@@ -679,52 +593,31 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
                     else:
                         miss = True
                 x, y, z = _point(matrix, x, y, z)
-                px[i], py[i], pz[i] = x, y, z
-                w_miss[i] = miss
-                gi, gj, gk = 0.0, 0.0, 0.0
+                f = 1.0
+                if use_jac and not jac_lattice:  # J on its own grid, sampled where G is
+                    ji, jj, jk = _point(jac_map, x, y, z)
+                    f = _factor_at(jac, jx, jy, jz, ji, jj, jk)
                 if use_last:
                     gi, gj, gk = _point(last_map, x, y, z)
-                if own_jac:
-                    if jac_lattice:
-                        ji, jj_, jk = gi + ox, gj + oy, gk + oz
+                    if -0.5 <= gi <= gx - 0.5 and -0.5 <= gj <= gy - 0.5 and -0.5 <= gk <= gz - 0.5:
+                        bi, ti = _floor(gi)
+                        bj, tj_ = _floor(gj)
+                        bk, tk_ = _floor(gk)
+                        o, di, dj, dk = _cell(gx, gy, gz, bi, bj, bk)
+                        dx = _blend(last, o, di, dj, dk, ti, tj_, tk_)
+                        dy = _blend(last, o + vol, di, dj, dk, ti, tj_, tk_)
+                        dz = _blend(last, o + 2 * vol, di, dj, dk, ti, tj_, tk_)
+                        if use_jac and jac_lattice:
+                            if not same_cells:
+                                o, di, dj, dk = _cell(jx, jy, jz, bi + ox, bj + oy, bk + oz)
+                            f = _blend(jac, o, di, dj, dk, ti, tj_, tk_)
+                        x += dx
+                        y += dy
+                        z += dz
                     else:
-                        ji, jj_, jk = _point(jac_map, x, y, z)
-                    nan = ji != ji or jj_ != jj_ or jk != jk  # NaN point: no factor
-                    j_nan[i] = nan
-                    if nan:
-                        ji, jj_, jk = 0.0, 0.0, 0.0
-                    jix[i], jiy[i], jiz[i] = ji, jj_, jk
-                if use_last:
-                    # ITK's rule: identity and a flagged miss outside [-0.5, n - 0.5] (NaN too).
-                    inside = -0.5 <= gi <= gx - 0.5 and -0.5 <= gj <= gy - 0.5 and -0.5 <= gk <= gz - 0.5
-                    g_in[i] = inside
-                    if not inside:
-                        gi, gj, gk = 0.0, 0.0, 0.0
-                    gix[i], giy[i], giz[i] = gi, gj, gk
-            # Pass 2: trilinear reads of G's three channels and of J.
-            if use_last:
-                _blend_line(last, vol, gx, gy, gz, g_row, g_plane, g_steps, gix, giy, giz, bx, by, bz,
-                            jac, use_jac and not own_jac, bf)
-            if own_jac:
-                _blend_line(jac, np.int32(0), jx, jy, jz, j_row, j_plane, j_steps, jix, jiy, jiz, bf, bf, bf,
-                            jac, False, bf)
-            # Pass 3: the end points, misses, and the factor where G's cells could not be shared.
-            for i in range(nx):
-                x, y, z = px[i], py[i], pz[i]
-                miss = w_miss[i]
-                f = 1.0
-                if use_jac:
-                    f = 1.0 if own_jac and j_nan[i] else float(bf[i])
-                if use_last:
-                    if g_in[i]:
-                        x += bx[i]
-                        y += by[i]
-                        z += bz[i]
-                    else:
+                        if use_jac and jac_lattice:
+                            f = _factor_at(jac, jx, jy, jz, gi + ox, gj + oy, gk + oz)
                         miss = True
-                        if use_jac and not own_jac:
-                            gi, gj, gk = _point(last_map, x, y, z)
-                            f = _factor_at(jac, jx, jy, jz, gi, gj, gk)
                 ends[i, 0], ends[i, 1], ends[i, 2] = _point(raw_map, x, y, z)
                 ends[i, 3] = f
                 ends[i, 4] = 1.0 if miss else 0.0

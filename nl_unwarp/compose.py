@@ -466,7 +466,7 @@ def _unrolled_arguments(steps: Sequence[Step], target_shape, target_affine: np.n
         last, last_map = g.disp_ras_mm, _world_to_index(g.affine)
         if g.jacobian is not None:
             jac = g.jacobian
-    if rest or last.size >= 2**31 or jac.size >= 2**31:  # (the kernel's offsets are int32)
+    if rest:
         return None
     # Flat views (no copies: the arrays are x fastest) that the kernel reads through cell offsets.
     return (first, offset, first is not _NO_FIELD, np.ascontiguousarray(matrix[:3]),
