@@ -34,18 +34,18 @@ so that the load of a shared machine falls on all alike; the tables give the
 median wall time and the median CPU time (user + system of the process, all
 threads) per stage. On a busy machine the CPU time is the steadier figure.
 
-Target: once / plain <= 1.25. Three readings are printed for the 1 mm field: with the warps (the
-composable field computed in the timed section, on its larger grid, against
-the plain correction's warp on the raw grid), with the fields given (the
-composable field exists, as in a pipeline that made it for registration),
-and against a plain correction that writes its composable field too
-(``nl-unwarp correct --out-field``: the grown warp, its interior used for the
-image), which is what a pipeline that composes later runs first; and the
-three again with the 2 mm field (a plain correction writing a 2 mm field
-computes the 1 mm warp of the image and the 2 mm field: one more warp stage).
-One more row gives the last reading with the Jacobian map on the raw grid
-(the BIDS app's layout). The last row is the peer's: our one pass against SimpleITK's. Nothing is
-asserted.
+Target: once / plain <= 1.25. Three readings are printed for the 1 mm field:
+with the warps (the composable field computed in the timed section, on its
+larger grid, against the plain correction's warp on the raw grid), with the
+fields given (the composable field exists, as in a pipeline that made it for
+registration), and against a plain correction that writes its composable
+field too (``nl-unwarp correct --out-field``: the grown warp, its interior
+used for the image), which is what a pipeline that composes later runs first;
+and the three again with the 2 mm field (a plain correction writing a 2 mm
+field computes the 1 mm warp of the image and the 2 mm field: one more warp
+stage). One more row gives the last reading with the Jacobian map on the raw
+grid (the BIDS app's layout). The last row is the peer's: our one pass
+against SimpleITK's. Nothing is asserted.
 
 Usage: python benchmarks/bench_compose.py [--repeats N] [--quick]
 """
@@ -157,10 +157,11 @@ def main() -> None:
     grown_shape, grown_aff = grid_with_margin(shape, raw_aff, FIELD_MARGIN_MM)
     coarse_shape, coarse_aff = grid_with_margin(shape, raw_aff, FIELD_MARGIN_MM, COARSE_MM)
 
+    registration = [FieldStep(warp_w, target_aff), AffineStep(matrix)]  # W, A
+
     def chain_of(g):
         # FieldStep.jacobian: the factor sampled where G is applied, sharing its weights.
-        return [FieldStep(warp_w, target_aff), AffineStep(matrix),
-                FieldStep(g.disp_ras_mm, g.affine, g.jacobian)]
+        return registration + [FieldStep(g.disp_ras_mm, g.affine, g.jacobian)]
 
     # Warm up (numba loads its cached kernels) on a small grid, same array layouts.
     small = compute_warp(coil, (16, 16, 16), _affine((16, 16, 16)), frame)
@@ -194,8 +195,7 @@ def main() -> None:
     grown0 = compute_warp(coil, grown_shape, grown_aff, frame)
     sitk_raw, sitk_target, composite = _sitk_peer(Path(scratch.name), raw, raw_aff, target_aff, shape,
                                                   warp_w, matrix, grown0)
-    no_factor = resample_chain(raw, raw_aff, [FieldStep(warp_w, target_aff), AffineStep(matrix),
-                                              FieldStep(grown0.disp_ras_mm, grown0.affine)],
+    no_factor = resample_chain(raw, raw_aff, registration + [FieldStep(grown0.disp_ras_mm, grown0.affine)],
                                shape, target_aff, on_outside="ignore").data
     del grown0
     agreement = uncovered = coarse_gap = sitk_gap = 0.0
@@ -215,8 +215,8 @@ def main() -> None:
         coarse_chain = chain_of(coarse)
         once_coarse = record("once coarse", lambda c=coarse_chain: resample_chain(
             raw, raw_aff, c, shape, target_aff, on_outside="ignore"))
-        raw_j_chain = [FieldStep(warp_w, target_aff), AffineStep(matrix), FactorStep(warp.jacobian, raw_aff),
-                       FieldStep(coarse.disp_ras_mm, coarse.affine)]
+        raw_j_chain = registration + [FactorStep(warp.jacobian, raw_aff),
+                                      FieldStep(coarse.disp_ras_mm, coarse.affine)]
         record("once coarse J raw", lambda c=raw_j_chain: resample_chain(raw, raw_aff, c, shape, target_aff,
                                                                           on_outside="ignore"))
         # Voxels whose end point crosses the raw image's edge between the two fields jump to the
