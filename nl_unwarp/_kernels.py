@@ -191,22 +191,21 @@ def upsample_last(src, step, weights, out):
     ``out[a, b, i, c]`` comes from ``src[a, b, i // step + 0..3, c]`` with
     ``weights[i % step]``, the four Lagrange weights of fraction
     ``(i % step) / step`` (lattice nodes of ``src`` sit at ``(j - 1) * step``).
+    Output rows ``i`` are shared out among the threads: the last pass of a
+    warp (A = B = 1, the whole grid in C) runs on all cores too.
     """
     na, nb, n, nc = out.shape
-    for a in numba.prange(na):
-        for b in range(nb):
-            for base in range(src.shape[2] - 3):
-                for phase in range(step):
-                    i = base * step + phase
-                    if i >= n:
-                        break
-                    w0 = weights[phase, 0]
-                    w1 = weights[phase, 1]
-                    w2 = weights[phase, 2]
-                    w3 = weights[phase, 3]
-                    for c in range(nc):
-                        out[a, b, i, c] = (w0 * src[a, b, base, c] + w1 * src[a, b, base + 1, c]
-                                           + w2 * src[a, b, base + 2, c] + w3 * src[a, b, base + 3, c])
+    for i in numba.prange(n):
+        base, phase = i // step, i % step
+        w0 = weights[phase, 0]
+        w1 = weights[phase, 1]
+        w2 = weights[phase, 2]
+        w3 = weights[phase, 3]
+        for a in range(na):
+            for b in range(nb):
+                for c in range(nc):
+                    out[a, b, i, c] = (w0 * src[a, b, base, c] + w1 * src[a, b, base + 1, c]
+                                       + w2 * src[a, b, base + 2, c] + w3 * src[a, b, base + 3, c])
 
 
 @numba.njit(parallel=True, cache=True)
@@ -324,15 +323,122 @@ def _cell(nx, ny, nz, bi, bj, bk):
 
 
 @numba.njit(inline="always", cache=True)
-def _factor_at(v, nx, ny, nz, gi, gj, gk):
-    """A factor map trilinear at a continuous index, held at its edge values beyond the grid."""
+def _factor_at(v, nx, ny, nz, gi, gj, gk, step, first):
+    """A factor map trilinear at a continuous index, held at its edge values beyond the grid.
+
+    The map is ``v[step * node + first]`` (``step = 1, first = 0`` for a map of its own; ``4, 3``
+    for the Jacobian channel of a voxel-interleaved warp)."""
     if gi != gi or gj != gj or gk != gk:  # NaN point: no factor
         return 1.0
     bi, ti = _floor(min(max(gi, -1.0), float(nx)))
     bj, tj = _floor(min(max(gj, -1.0), float(ny)))
     bk, tk = _floor(min(max(gk, -1.0), float(nz)))
     o, di, dj, dk = _cell(nx, ny, nz, bi, bj, bk)
-    return _blend(v, o, di, dj, dk, ti, tj, tk)
+    return _blend(v, step * o + first, step * di, step * dj, step * dk, ti, tj, tk)
+
+
+def _lerp_ir(builder, p, q, t, vd):
+    """IR of ``p + t (q - p)`` on vectors; ``p``, ``q`` float32 are subtracted in float32 and
+    widened, as numba's scalar code does with float32 array items, so the lanes round as
+    :func:`_blend` does."""
+    if p.type.element != vd.element:
+        d = builder.fpext(builder.fsub(q, p), vd)
+        p = builder.fpext(p, vd)
+    else:
+        d = builder.fsub(q, p)
+    return builder.fadd(p, builder.fmul(t, d, flags=("contract",)), flags=("contract",))
+
+
+def _blend_ir(context, builder, corners, fractions):
+    """IR of four :func:`_blend` at once: ``corners`` the eight <4 x float> corner vectors in
+    the order (000, 100, 010, 110, 001, 101, 011, 111), ``fractions`` (ti, tj, tk) float64.
+    Returns a UniTuple of four float64."""
+    from llvmlite import ir
+
+    i32 = ir.IntType(32)
+    vd = ir.VectorType(ir.DoubleType(), 4)
+
+    def splat(x):
+        v = builder.insert_element(ir.Constant(vd, ir.Undefined), x, ir.Constant(i32, 0))
+        return builder.shuffle_vector(v, v, ir.Constant(ir.VectorType(i32, 4), [0, 0, 0, 0]))
+
+    ti, tj, tk = (splat(t) for t in fractions)
+    c000, c100, c010, c110, c001, c101, c011, c111 = corners
+    a00, a10 = _lerp_ir(builder, c000, c100, ti, vd), _lerp_ir(builder, c010, c110, ti, vd)
+    a01, a11 = _lerp_ir(builder, c001, c101, ti, vd), _lerp_ir(builder, c011, c111, ti, vd)
+    b0, b1 = _lerp_ir(builder, a00, a10, tj, vd), _lerp_ir(builder, a01, a11, tj, vd)
+    r = _lerp_ir(builder, b0, b1, tk, vd)
+    lanes = [builder.extract_element(r, ir.Constant(i32, c)) for c in range(4)]
+    return context.make_tuple(builder, types.UniTuple(types.float64, 4), lanes)
+
+
+def _int_args(context, builder, signature, args, kind):
+    return [context.cast(builder, v, t, kind) for v, t in zip(args, signature, strict=True)]
+
+
+@intrinsic
+def _blend_nodes4(typingctx, v, o, di, dj, dk, ti, tj, tk):
+    """Four channels of a voxel-interleaved float32 buffer blended at once: the same numbers
+    as ``_blend(v, o + c, di, dj, dk, ti, tj, tk)`` for ``c = 0..3`` (offsets in floats),
+    with one 16-byte load per corner and the arithmetic on vectors."""
+    sig = types.UniTuple(types.float64, 4)(v, o, di, dj, dk, ti, tj, tk)
+
+    def codegen(context, builder, signature, args):
+        from llvmlite import ir
+
+        base = context.make_array(signature.args[0])(context, builder, args[0]).data
+        o, di, dj, dk = _int_args(context, builder, signature.args[1:5], args[1:5], types.int64)
+        fractions = _int_args(context, builder, signature.args[5:], args[5:], types.float64)
+        vf = ir.VectorType(ir.FloatType(), 4)
+        corners = []
+        for dz in (False, True):
+            for dy in (False, True):
+                for dx in (False, True):
+                    off = o
+                    for on, step in ((dz, dk), (dy, dj), (dx, di)):
+                        off = builder.add(off, step) if on else off
+                    ptr = builder.bitcast(builder.gep(base, [off]), vf.as_pointer())
+                    corners.append(builder.load(ptr, align=4))
+        return _blend_ir(context, builder, corners, fractions)
+
+    return sig, codegen
+
+
+@intrinsic
+def _blend_planes4(typingctx, v, jv, o, di, dj, dk, vol, jo, jdi, jdj, jdk, ti, tj, tk):
+    """Three planar channels of ``v`` (``vol`` floats apart) and one of ``jv`` blended at once:
+    the same numbers as ``_blend(v, o + c vol, di, dj, dk, ...)`` for ``c = 0..2`` and
+    ``_blend(jv, jo, jdi, jdj, jdk, ...)``, with the arithmetic on vectors."""
+    sig = types.UniTuple(types.float64, 4)(v, jv, o, di, dj, dk, vol, jo, jdi, jdj, jdk, ti, tj, tk)
+
+    def codegen(context, builder, signature, args):
+        from llvmlite import ir
+
+        base = context.make_array(signature.args[0])(context, builder, args[0]).data
+        jbase = context.make_array(signature.args[1])(context, builder, args[1]).data
+        o, di, dj, dk, vol, jo, jdi, jdj, jdk = _int_args(context, builder, signature.args[2:11],
+                                                          args[2:11], types.int64)
+        fractions = _int_args(context, builder, signature.args[11:], args[11:], types.float64)
+        vf = ir.VectorType(ir.FloatType(), 4)
+        i32 = ir.IntType(32)
+        corners = []
+        for dz in (False, True):
+            for dy in (False, True):
+                for dx in (False, True):
+                    off, joff = o, jo
+                    for on, step, jstep in ((dz, dk, jdk), (dy, dj, jdj), (dx, di, jdi)):
+                        if on:
+                            off, joff = builder.add(off, step), builder.add(joff, jstep)
+                    vec = ir.Constant(vf, ir.Undefined)
+                    for c in range(3):
+                        item = builder.load(builder.gep(base, [off]))
+                        vec = builder.insert_element(vec, item, ir.Constant(i32, c))
+                        off = builder.add(off, vol)
+                    item = builder.load(builder.gep(jbase, [joff]))
+                    corners.append(builder.insert_element(vec, item, ir.Constant(i32, 3)))
+        return _blend_ir(context, builder, corners, fractions)
+
+    return sig, codegen
 
 
 @numba.njit(inline="always", cache=True)
@@ -372,14 +478,14 @@ def _follow(i, j, k, x, y, z, program, affines, addresses, sizes, dims, maps):
             continue
         gi, gj, gk = _point_n(maps, a, x, y, z)
         if kind == STEP_FACTOR:
-            f *= _factor_at(v, nx, ny, nz, gi, gj, gk)
+            f *= _factor_at(v, nx, ny, nz, gi, gj, gk, 1, 0)
             continue
         inside = -0.5 <= gi <= nx - 0.5 and -0.5 <= gj <= ny - 0.5 and -0.5 <= gk <= nz - 0.5
         if not inside:
             if kind == STEP_FIELD_FACTOR:
                 b = program[s, 2]
                 f *= _factor_at(_buffer(addresses, sizes, b), dims[b, 0], dims[b, 1], dims[b, 2],
-                                gi + program[s, 3], gj + program[s, 4], gk + program[s, 5])
+                                gi + program[s, 3], gj + program[s, 4], gk + program[s, 5], 1, 0)
             miss = True
             continue
         bi, ti = _floor(gi)
@@ -521,8 +627,8 @@ def fold_chain_and_sample(coef, order, fill, target_map, raw_map, program, affin
 
 @numba.njit(parallel=True, cache=True, fastmath=FAST_MATH)
 def field_affine_field_sample(coef, order, fill, target_map, first, first_offset, use_first, matrix,
-                              last, last_dims, last_map, use_last, jac, jac_dims, jac_offset, jac_lattice,
-                              jac_map, use_jac, raw_map, out, missed):
+                              last, last_dims, last_map, use_last, packed, jac, jac_dims, jac_offset,
+                              jac_lattice, jac_map, use_jac, jac_in_last, raw_map, out, missed):
     """:func:`fold_chain_and_sample` for the chain shape ``[W, A, G (x J)]``, unrolled.
 
     ``W`` (optional) is a field on the target lattice, read at its nodes
@@ -534,10 +640,11 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
     ``G``'s lattice (its own grid, or e.g. the raw grid inside the grown one)
     it shares ``G``'s weights (the ``STEP_FIELD_FACTOR`` rule), elsewhere (the
     raw grid and a coarser field) it is interpolated on its own (the
-    ``STEP_FACTOR`` rule). The
-    arithmetic is that of the generic kernel, step for step; the chain's
-    parameters are plain arguments rather than rows of a program, and ``G``
-    is read from flat buffers through one offset per cell
+    ``STEP_FACTOR`` rule). The arithmetic is that of the generic kernel, step
+    for step, to the last bit: ``G``'s three channels and ``J`` are blended
+    together on four-lane vectors (:func:`_blend_nodes4` when ``G`` is
+    voxel-interleaved, one 16-byte read per corner; :func:`_blend_planes4`
+    for planar channels), which round as four :func:`_blend` calls do
     (``benchmarks/bench_compose.py``).
 
     Parameters
@@ -548,20 +655,25 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
         ``W``'s voxel index of target voxel (0, 0, 0).
     matrix : (3, 4) float64 ndarray
         ``A``, RAS mm.
-    last : (3 X' Y' Z',) float32 ndarray
-        ``G``'s displacement, RAS mm, flat: x fastest, components slowest (read if ``use_last``).
+    last : (3 X' Y' Z',) or (4 X' Y' Z',) float32 ndarray
+        ``G``'s displacement, RAS mm, flat, x fastest: components slowest, or,
+        if ``packed``, a node's ``dx, dy, dz`` and a fourth channel side by
+        side (read if ``use_last``).
     last_dims : (3,) int64 ndarray
         ``G``'s grid shape.
     last_map : (3, 4) float64 ndarray
         World RAS mm -> ``G``'s voxel index.
     jac : (X'' Y'' Z'',) float32 ndarray
-        The factor map ``J``, flat, x fastest (read if ``use_jac``).
+        The factor map ``J``, flat, x fastest (read if ``use_jac`` and not ``jac_in_last``).
     jac_dims, jac_offset : (3,) int64 ndarray
         ``J``'s grid shape, and its voxel index of ``G``'s voxel (0, 0, 0).
     jac_lattice : bool
         ``J`` is on ``G``'s lattice (``jac_offset`` applies); else ``jac_map`` does.
     jac_map : (3, 4) float64 ndarray
         World RAS mm -> ``J``'s voxel index (used unless ``jac_lattice``).
+    jac_in_last : bool
+        ``J`` is the fourth channel of a ``packed`` ``G`` (a warp as
+        :func:`nl_unwarp.warp.compute_warp` makes it).
 
     Other parameters as for :func:`fold_chain_and_sample`.
     """
@@ -572,6 +684,7 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
     ox, oy, oz = jac_offset[0], jac_offset[1], jac_offset[2]
     # J on G's own grid (a FieldStep's jacobian) reads the same cells.
     same_cells = jac_lattice and jx == gx and jy == gy and jz == gz and ox == 0 and oy == 0 and oz == 0
+    j_shares = use_jac and jac_lattice and not jac_in_last  # J's own buffer, G's weights
     vol = gx * gy * gz
     tj, tk = (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
     for tile in numba.prange(tj * tk):
@@ -596,7 +709,7 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
                 f = 1.0
                 if use_jac and not jac_lattice:  # J on its own grid, sampled where G is
                     ji, jj, jk = _point(jac_map, x, y, z)
-                    f = _factor_at(jac, jx, jy, jz, ji, jj, jk)
+                    f = _factor_at(jac, jx, jy, jz, ji, jj, jk, 1, 0)
                 if use_last:
                     gi, gj, gk = _point(last_map, x, y, z)
                     if -0.5 <= gi <= gx - 0.5 and -0.5 <= gj <= gy - 0.5 and -0.5 <= gk <= gz - 0.5:
@@ -604,19 +717,29 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
                         bj, tj_ = _floor(gj)
                         bk, tk_ = _floor(gk)
                         o, di, dj, dk = _cell(gx, gy, gz, bi, bj, bk)
-                        dx = _blend(last, o, di, dj, dk, ti, tj_, tk_)
-                        dy = _blend(last, o + vol, di, dj, dk, ti, tj_, tk_)
-                        dz = _blend(last, o + 2 * vol, di, dj, dk, ti, tj_, tk_)
-                        if use_jac and jac_lattice:
+                        # J's cell: G's, another on G's lattice, or none (its lane reads jac[0]).
+                        jo, jdi, jdj, jdk = 0, 0, 0, 0
+                        if j_shares:
+                            jo, jdi, jdj, jdk = o, di, dj, dk
                             if not same_cells:
-                                o, di, dj, dk = _cell(jx, jy, jz, bi + ox, bj + oy, bk + oz)
-                            f = _blend(jac, o, di, dj, dk, ti, tj_, tk_)
+                                jo, jdi, jdj, jdk = _cell(jx, jy, jz, bi + ox, bj + oy, bk + oz)
+                        if packed:
+                            dx, dy, dz, fg = _blend_nodes4(last, 4 * o, 4 * di, 4 * dj, 4 * dk, ti, tj_, tk_)
+                            if j_shares:
+                                fg = _blend(jac, jo, jdi, jdj, jdk, ti, tj_, tk_)
+                        else:
+                            dx, dy, dz, fg = _blend_planes4(last, jac, o, di, dj, dk, vol, jo, jdi, jdj, jdk,
+                                                            ti, tj_, tk_)
+                        if use_jac and jac_lattice:
+                            f = fg
                         x += dx
                         y += dy
                         z += dz
                     else:
-                        if use_jac and jac_lattice:
-                            f = _factor_at(jac, jx, jy, jz, gi + ox, gj + oy, gk + oz)
+                        if jac_in_last:
+                            f = _factor_at(last, gx, gy, gz, gi, gj, gk, 4, 3)
+                        elif j_shares:
+                            f = _factor_at(jac, jx, jy, jz, gi + ox, gj + oy, gk + oz, 1, 0)
                         miss = True
                 ends[i, 0], ends[i, 1], ends[i, 2] = _point(raw_map, x, y, z)
                 ends[i, 3] = f

@@ -62,6 +62,7 @@ __all__ = [
     "affine_pull_points",
     "compose_chain",
     "grid_with_margin",
+    "interleaved_block",
     "margin_slices",
     "resample_chain",
     "sample_factor",
@@ -93,12 +94,52 @@ def _grid_affine(affine, what: str) -> np.ndarray:
     return affine
 
 
+def _voxels_x_fastest(arr: np.ndarray) -> bool:
+    """Whether the voxel axes (the first three) have increasing strides: x fastest, as NIfTI
+    stores voxels, whatever the channels' stride (Fortran order, or a voxel's channels side by
+    side as :func:`nl_unwarp.warp.compute_warp` makes them). Axes of length 1 do not count."""
+    strides = [st for st, n in zip(arr.strides[:3], arr.shape[:3], strict=True) if n > 1]
+    return all(st > 0 for st in strides) and strides == sorted(strides)
+
+
 def _x_fastest(values, dims: int, what: str) -> np.ndarray:
-    """float32 in NIfTI's memory order (x fastest): no copy for a Fortran-ordered float32 array."""
-    arr = np.asfortranarray(values, dtype=np.float32)
+    """float32 with voxels in NIfTI's memory order (x fastest): no copy for a float32 array whose
+    voxels already are (Fortran-ordered, or a voxel-interleaved warp); others are copied to
+    Fortran order."""
+    arr = np.asarray(values)
     if arr.ndim != dims:
         raise ValueError(what)
-    return arr
+    if arr.dtype == np.float32 and _voxels_x_fastest(arr):
+        return arr
+    return np.asfortranarray(arr, dtype=np.float32)
+
+
+def interleaved_block(disp_ras_mm: np.ndarray) -> np.ndarray | None:
+    """The flat float32 block of ``4 X Y Z`` values behind a displacement whose voxels each hold
+    four channels side by side (``dx, dy, dz`` and a fourth, the Jacobian determinant in a warp
+    from :func:`nl_unwarp.warp.compute_warp`), voxels x fastest; None for any other layout.
+
+    The one-pass kernel reads such a field four channels at a time. The block must lie
+    inside the memory that ``disp_ras_mm`` is a view of (checked), so a slice such as
+    ``warp[..., 1:4]`` of a wider array is refused rather than read past its end.
+    """
+    d = disp_ras_mm
+    if d.dtype != np.float32 or d.ndim != 4 or d.shape[3] != 3 or d.strides[3] != 4:
+        return None
+    size = d.shape[0] * d.shape[1] * d.shape[2]
+    expected = (16, 16 * d.shape[0], 16 * d.shape[0] * d.shape[1])
+    if any(n > 1 and st != e for st, e, n in zip(d.strides[:3], expected, d.shape[:3], strict=True)):
+        return None
+    owner = d
+    while isinstance(owner.base, np.ndarray):
+        owner = owner.base
+    if not (owner.flags.c_contiguous or owner.flags.f_contiguous):
+        return None
+    low = owner.__array_interface__["data"][0]
+    start = d.__array_interface__["data"][0]
+    if start < low or start + 16 * size > low + owner.nbytes:
+        return None
+    return np.lib.stride_tricks.as_strided(d, shape=(4 * size,), strides=(4,), writeable=False)
 
 
 @dataclass(frozen=True)
@@ -157,9 +198,11 @@ class FieldStep:
     Parameters
     ----------
     disp_ras_mm : (X, Y, Z, 3) ndarray
-        Displacement at the grid points, world RAS mm. Stored float32, x
-        fastest and components slowest (NIfTI's order, that of our warps and
-        of fields read from files): such an input is kept without a copy.
+        Displacement at the grid points, world RAS mm. Stored float32 with
+        voxels x fastest: a Fortran-ordered input (NIfTI's order, that of
+        fields read from files) or a warp from
+        :func:`~nl_unwarp.warp.compute_warp` (a voxel's channels side by
+        side) is kept without a copy.
     affine : (4, 4) ndarray
         Grid affine, voxel index -> RAS mm.
     jacobian : (X, Y, Z) ndarray, optional
@@ -461,19 +504,31 @@ def _unrolled_arguments(steps: Sequence[Step], target_shape, target_affine: np.n
         jac_offset = _lattice_offset((np.linalg.inv(factor.affine) @ g.affine)[:3], g.shape)
         jac_map = _world_to_index(factor.affine)
         jac, rest = factor.values, [g]
+    block, jac_in_last = None, False
     if rest and isinstance(rest[0], FieldStep):
         g = rest.pop(0)
         last, last_map = g.disp_ras_mm, _world_to_index(g.affine)
+        block = interleaved_block(last)
         if g.jacobian is not None:
             jac = g.jacobian
+            jac_in_last = block is not None and _fourth_channel(jac, last)
     if rest:
         return None
-    # Flat views (no copies: the arrays are x fastest) that the kernel reads through cell offsets.
+    # Flat views that the kernel reads through cell offsets: no copies for a warp as
+    # compute_warp makes it (voxel-interleaved) or Fortran-ordered fields and maps.
+    flat_last = block if block is not None else last.reshape(-1, order="F")
+    flat_jac = _NO_FACTOR.reshape(-1) if jac_in_last else jac.reshape(-1, order="F")
     return (first, offset, first is not _NO_FIELD, np.ascontiguousarray(matrix[:3]),
-            last.reshape(-1, order="F"), np.array(last.shape[:3], np.int64), last_map, last is not _NO_FIELD,
-            jac.reshape(-1, order="F"), np.array(jac.shape, np.int64),
+            flat_last, np.array(last.shape[:3], np.int64), last_map, last is not _NO_FIELD, block is not None,
+            flat_jac, np.array(jac.shape, np.int64),
             np.zeros(3, np.int64) if jac_offset is None else jac_offset, jac_offset is not None, jac_map,
-            jac is not _NO_FACTOR)
+            jac is not _NO_FACTOR, jac_in_last)
+
+
+def _fourth_channel(jac: np.ndarray, disp: np.ndarray) -> bool:
+    """Whether ``jac`` is the channel after ``disp``'s three in a voxel-interleaved block."""
+    return (jac.shape == disp.shape[:3] and jac.strides == disp.strides[:3]
+            and jac.__array_interface__["data"][0] == disp.__array_interface__["data"][0] + 12)
 
 
 def _check_on_outside(on_outside: str) -> None:

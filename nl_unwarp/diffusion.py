@@ -128,7 +128,8 @@ class CoilTensorField:
         Grid affine, voxel index -> RAS mm.
     tensor : (X, Y, Z, 9) float32 ndarray
         ``L[i, j]`` at channel ``3 i + j`` (:data:`TENSOR_COMPONENTS`), in
-        the b-vector frame; Fortran-ordered (each channel one contiguous volume).
+        the b-vector frame; a voxel's nine channels side by side, voxels x fastest
+        (:func:`nl_unwarp.warp.upsample_lattice`).
     outside_valid : (X, Y, Z) bool ndarray
         Voxels beyond the coil model's valid radius.
     ras_from_bvec : (3, 3) ndarray
@@ -149,11 +150,10 @@ class CoilTensorField:
 
     def matrices(self, mask: np.ndarray | None = None) -> np.ndarray:
         """(N, 3, 3) float64 tensors of the voxels in ``mask`` (all voxels if None)."""
-        # Channel by channel: each is one contiguous volume (Fortran order).
-        if mask is None:
-            flat = np.stack([self.tensor[..., c].ravel(order="F") for c in range(9)], axis=-1)
+        if mask is None:  # voxels x fastest, as ravel(order="F") lists them
+            flat = self.tensor.transpose(2, 1, 0, 3).reshape(-1, 9)
         else:
-            flat = np.stack([self.tensor[..., c][mask] for c in range(9)], axis=-1)
+            flat = self.tensor[mask]
         return np.asarray(flat, dtype=float).reshape(-1, 3, 3)
 
 

@@ -180,21 +180,24 @@ def _check_voxels(shape, count: int, seed: int) -> np.ndarray:
 def upsample_lattice(values: np.ndarray, shape, steps) -> np.ndarray:
     """Upsample (Mx, My, Mz, C) lattice values onto the full grid, float32 (X, Y, Z, C).
 
-    The result is Fortran-ordered (x fastest, channel slowest), NIfTI's
-    on-disk order: a channel is then one contiguous volume, which the
-    pull-back kernel and the file writers stream through without a transposed
-    copy. Axes are upsampled x, then y, then z.
+    The result is a view of one block in which the channels of a voxel lie
+    side by side and voxels follow in NIfTI's order (x fastest): strides
+    ``(4C, 4CX, 4CXY, 4)`` bytes. A warp's displacement and Jacobian
+    determinant are then one 16-byte read per voxel, for the pull-back kernel
+    and for the one-pass chain kernel, which blends all four channels of a
+    cell at once (:func:`nl_unwarp.compose.interleaved_block`). Axes are
+    upsampled x, then y, then z.
     """
     nx, ny, nz = (int(n) for n in shape)
-    # Channel-first and C-ordered, (C, Mz, My, Mx): each pass upsamples axis 2
+    # Channel-last and C-ordered, (Mz, My, Mx, C): each pass upsamples axis 2
     # of an (A, B, M, rest) view without copying.
-    cf = np.ascontiguousarray(np.transpose(values, (3, 2, 1, 0)), dtype=np.float64)
-    nc, mz, my, mx = cf.shape
-    cf = _upsample_axis(cf.reshape(nc * mz, my, mx, 1), nx, steps[0]).reshape(nc, mz, my, nx)
-    cf = _upsample_axis(cf, ny, steps[1])
+    cl = np.ascontiguousarray(np.transpose(values, (2, 1, 0, 3)), dtype=np.float64)
+    mz, my, _, nc = cl.shape
+    cl = _upsample_axis(cl, nx, steps[0])
+    cl = _upsample_axis(cl.reshape(1, mz, my, nx * nc), ny, steps[1])
     # The last pass is over the full grid: write float32 directly.
-    cf = _upsample_axis(cf.reshape(nc, 1, mz, ny * nx), nz, steps[2], dtype=np.float32)
-    return cf.reshape(nc, nz, ny, nx).transpose(3, 2, 1, 0)
+    cl = _upsample_axis(cl.reshape(1, 1, mz, ny * nx * nc), nz, steps[2], dtype=np.float32)
+    return cl.reshape(nz, ny, nx, nc).transpose(2, 1, 0, 3)
 
 
 def _upsampled(coil, frame, affine, shape, projector, steps, nodes):

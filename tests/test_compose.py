@@ -67,6 +67,16 @@ def _field(shape, affine, seed, amplitude_mm=3.0, jacobian=False) -> FieldStep:
     return FieldStep(disp, affine, jac)
 
 
+def _interleaved(step: FieldStep) -> FieldStep:
+    """The same field with displacement and Jacobian (or ones) side by side per voxel, voxels x
+    fastest: the layout :func:`nl_unwarp.warp.compute_warp` makes."""
+    nx, ny, nz = step.shape
+    block = np.empty((nz, ny, nx, 4), np.float32).transpose(2, 1, 0, 3)
+    block[..., :3] = step.disp_ras_mm
+    block[..., 3] = 1.0 if step.jacobian is None else step.jacobian
+    return FieldStep(block[..., :3], step.affine, None if step.jacobian is None else block[..., 3])
+
+
 def _affine(seed) -> AffineStep:
     rng = np.random.default_rng(seed)
     m = np.eye(4)
@@ -264,11 +274,19 @@ def _unrolled_chain(shape_name, target_shape, target_affine):
             "G+J": [g],
             "W, A": [w_nodes, a],
             "W, A, J on G's lattice, G": [w_nodes, a, lattice_factor, g_bare],
-            "W, A, J on its own grid, G": [w_nodes, a, own_factor, g_bare]}[shape_name]
+            "W, A, J on its own grid, G": [w_nodes, a, own_factor, g_bare],
+            # G voxel-interleaved, as compute_warp makes warps: J its fourth channel, or a map apart.
+            "W, A, A, G+J interleaved": [w_nodes, a, _affine(4), _interleaved(g)],
+            "A, G+J interleaved on one slice": [a, _interleaved(g_slice)],
+            "W, A, J on G's lattice, G interleaved": [w_nodes, a, lattice_factor, _interleaved(g_bare)],
+            "W, A, J on its own grid, G interleaved": [w_nodes, a, own_factor, _interleaved(g_bare)],
+            }[shape_name]
 
 
 UNROLLED = ["W, A, A, G+J", "A, G+J on one slice", "W (grown), A, G", "A, G+J", "G+J", "W, A",
-            "W, A, J on G's lattice, G", "W, A, J on its own grid, G"]
+            "W, A, J on G's lattice, G", "W, A, J on its own grid, G", "W, A, A, G+J interleaved",
+            "A, G+J interleaved on one slice", "W, A, J on G's lattice, G interleaved",
+            "W, A, J on its own grid, G interleaved"]
 
 
 @pytest.mark.parametrize("order", [0, 1, 3])
@@ -281,7 +299,9 @@ def test_unrolled_chains_match_scipy_at_the_chain_points(order, shape_name):
     shape = (14, 15, 13)
     aff = _oblique(shape, (2.5, 3.0, 3.2), 20.0, (0, 0, 0))
     chain = _unrolled_chain(shape_name, shape, aff)
-    assert _unrolled_arguments(chain, shape, aff) is not None  # the path under test
+    unrolled = _unrolled_arguments(chain, shape, aff)
+    assert unrolled is not None  # the path under test
+    assert unrolled[8] == ("interleaved" in shape_name)  # G read four channels per 16-byte load
     raw, raw_aff = _raw_for_sampling()
     got = resample_chain(raw, raw_aff, chain, shape, aff, order=order, fill=FILL, on_outside="ignore")
     expected, inside, ref_missed = _scipy_at_chain_points(chain, shape, aff, raw, raw_aff, order)
@@ -294,6 +314,39 @@ def test_unrolled_chains_match_scipy_at_the_chain_points(order, shape_name):
                              unroll=False)
     np.testing.assert_allclose(got.data, generic.data, rtol=0, atol=SAMPLE_ATOL)
     np.testing.assert_array_equal(got.uncovered, generic.uncovered)
+
+
+@pytest.mark.parametrize("shape_name", ["W, A, A, G+J", "A, G+J on one slice", "W, A, J on G's lattice, G",
+                                        "W, A, J on its own grid, G"])
+def test_interleaved_fields_give_the_planar_numbers_to_the_bit(shape_name):
+    """G voxel-interleaved (one 16-byte read per corner) and G planar (three volumes) give the
+    same bits: both blend the channels on vectors that round as the scalar blend does. Internal
+    consistency of two layouts; the scipy test above is the outside reference for both."""
+    shape = (14, 15, 13)
+    aff = _oblique(shape, (2.5, 3.0, 3.2), 20.0, (0, 0, 0))
+    planar = _unrolled_chain(shape_name, shape, aff)
+    interleaved = planar[:-1] + [_interleaved(planar[-1])]
+    raw, raw_aff = _raw_for_sampling()
+    for order in (0, 1, 3):
+        a = resample_chain(raw, raw_aff, planar, shape, aff, order=order, fill=FILL, on_outside="ignore")
+        b = resample_chain(raw, raw_aff, interleaved, shape, aff, order=order, fill=FILL, on_outside="ignore")
+        np.testing.assert_array_equal(a.data, b.data)
+        np.testing.assert_array_equal(a.uncovered, b.uncovered)
+
+
+def test_interleaved_block_only_for_a_whole_four_channel_block():
+    from nl_unwarp.compose import interleaved_block
+
+    step = _interleaved(_field((5, 6, 7), np.eye(4), 3, jacobian=True))
+    block = interleaved_block(step.disp_ras_mm)
+    assert block is not None and block.size == 4 * 5 * 6 * 7
+    np.testing.assert_array_equal(block.reshape(7, 6, 5, 4)[..., :3].transpose(2, 1, 0, 3), step.disp_ras_mm)
+    np.testing.assert_array_equal(block[3::4], step.jacobian.ravel(order="F"))
+    wide = np.zeros((7, 6, 5, 4), np.float32).transpose(2, 1, 0, 3)
+    assert interleaved_block(wide[..., 1:]) is None  # its last voxel's fourth channel is past the end
+    assert interleaved_block(np.zeros((5, 6, 7, 3), np.float32, order="F")) is None  # planar
+    assert interleaved_block(np.zeros((5, 6, 7, 3), np.float32)) is None  # C order
+    assert interleaved_block(wide[::2, :, :, :3]) is None  # every other voxel
 
 
 @pytest.mark.parametrize("unroll", [True, False])
@@ -337,6 +390,9 @@ def test_fields_in_nifti_order_are_not_copied():
     step = FieldStep(disp, np.eye(4), jac)
     assert np.shares_memory(step.disp_ras_mm, disp) and np.shares_memory(step.jacobian, jac)
     assert np.shares_memory(FactorStep(jac, np.eye(4)).values, jac)
+    warp = _interleaved(step)  # compute_warp's layout: kept as it is, not copied
+    again = FieldStep(warp.disp_ras_mm, np.eye(4), warp.jacobian)
+    assert again.disp_ras_mm is warp.disp_ras_mm and again.jacobian is warp.jacobian
     c_order = FieldStep(np.ascontiguousarray(disp), np.eye(4))
     assert c_order.disp_ras_mm.flags.f_contiguous  # converted once, to NIfTI's order
 

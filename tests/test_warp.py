@@ -138,6 +138,25 @@ def test_demo_coil_matches_direct_evaluation(demo_coil, grid, position, offset_m
     assert warp.interpolation_error_mm <= DEFAULT_TOLERANCE_MM
 
 
+@pytest.mark.parametrize("grid", ["oblique-anisotropic", "single-slice"])
+def test_warp_channels_lie_side_by_side(demo_coil, grid):
+    """Displacement and Jacobian are views of one block, a voxel's four channels side by side and
+    voxels x fastest (what the one-pass kernel reads four at a time), holding the directly
+    evaluated displacement (the outside reference of the test above)."""
+    from nl_unwarp.compose import interleaved_block
+
+    shape, affine = GRIDS[grid]
+    offset_mm = (15.0, -10.0, 60.0)
+    warp = compute_warp(demo_coil, shape, affine, DeviceFrame("HFS", offset_mm))
+    block = interleaved_block(warp.disp_ras_mm)
+    assert block is not None
+    nodes = block.reshape(shape[2], shape[1], shape[0], 4).transpose(2, 1, 0, 3)
+    np.testing.assert_array_equal(nodes[..., :3], warp.disp_ras_mm)
+    np.testing.assert_array_equal(nodes[..., 3], warp.jacobian)
+    ref = _direct_disp_ras(demo_coil, _voxels_ras(shape, affine), "HFS", offset_mm)
+    assert np.linalg.norm(nodes[..., :3] - ref, axis=-1).max() <= DEFAULT_TOLERANCE_MM
+
+
 @pytest.mark.parametrize("grid", ["ras", "oblique-anisotropic", "single-slice"])
 def test_jacobian_matches_finite_differences(demo_coil, grid):
     shape, affine = GRIDS[grid]
