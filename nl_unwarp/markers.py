@@ -113,9 +113,16 @@ class RigidPose:
         return np.asarray(points_phantom_mm, float) @ self.rotation.T + self.translation_ras_mm
 
     def rotation_angle_deg(self) -> float:
-        """Angle of the rotation, degrees."""
-        cos = np.clip((np.trace(self.rotation) - 1.0) / 2.0, -1.0, 1.0)
-        return float(np.degrees(np.arccos(cos)))
+        """Angle of the rotation, degrees.
+
+        From its sine (half the norm of the antisymmetric part) and cosine (from the trace)
+        with atan2: the arccos of the trace alone cannot tell angles below about 1e-6 degrees
+        from rounding.
+        """
+        r = self.rotation
+        sin = 0.5 * float(np.linalg.norm([r[2, 1] - r[1, 2], r[0, 2] - r[2, 0], r[1, 0] - r[0, 1]]))
+        cos = (float(np.trace(r)) - 1.0) / 2.0
+        return float(np.degrees(np.arctan2(sin, cos)))
 
     def compose_error(self, other: RigidPose) -> tuple[float, float]:
         """Rotation angle (deg) of ``R_self R_other^T`` and translation distance (mm)."""

@@ -193,6 +193,16 @@ def test_matching_tolerates_missing_and_spurious_markers(small_phantom):
     assert angle < 0.05 and shift < 0.1
 
 
+@pytest.mark.parametrize("angle_deg", [1e-7, 0.3, 45.0, 179.0])
+def test_rotation_angle_matches_scipy(angle_deg):
+    """The pose's rotation angle against scipy's ``Rotation.magnitude`` (outside reference),
+    down to angles whose trace differs from 3 by less than its rounding."""
+    rot = Rotation.from_rotvec(np.deg2rad(angle_deg) * np.array([0.3, -0.5, 0.81]) / np.linalg.norm(
+        [0.3, -0.5, 0.81]))
+    got = RigidPose(rot.as_matrix(), np.zeros(3)).rotation_angle_deg()
+    assert got == pytest.approx(np.degrees(rot.magnitude()), rel=1e-9)
+
+
 def test_orientation_search_finds_the_pose_and_needs_the_feature(small_phantom):
     phantom, _, _ = small_phantom
     detections = phantom.markers_ras_mm()
