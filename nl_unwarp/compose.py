@@ -61,6 +61,7 @@ __all__ = [
     "ResampledChain",
     "affine_pull_points",
     "compose_chain",
+    "empty_interleaved",
     "grid_with_margin",
     "interleaved_block",
     "margin_slices",
@@ -112,6 +113,14 @@ def _x_fastest(values, dims: int, what: str) -> np.ndarray:
     if arr.dtype == np.float32 and _voxels_x_fastest(arr):
         return arr
     return np.asfortranarray(arr, dtype=np.float32)
+
+
+def empty_interleaved(shape: Sequence[int]) -> np.ndarray:
+    """An uninitialised float32 (X, Y, Z, 4) array, a voxel's four channels side by side and
+    voxels x fastest: the layout of a warp from :func:`nl_unwarp.warp.compute_warp`, in
+    which ``[..., :3]`` (a displacement) is read by :func:`interleaved_block`."""
+    nx, ny, nz = (int(n) for n in shape)
+    return np.empty((nz, ny, nx, 4), np.float32).transpose(2, 1, 0, 3)
 
 
 def interleaved_block(disp_ras_mm: np.ndarray) -> np.ndarray | None:

@@ -16,6 +16,7 @@ from pathlib import Path
 import nibabel as nib
 import numpy as np
 
+from ..compose import empty_interleaved
 from ..errors import InputError
 from ..frames import LPS_FROM_RAS
 from .atomic import OutputSet
@@ -42,7 +43,13 @@ def write_itk_field(outputs: OutputSet, path: str | Path, disp_ras_mm: np.ndarra
 
 
 def read_itk_field(path: str | Path) -> tuple[np.ndarray, np.ndarray]:
-    """Read an ITK field file; returns the (X, Y, Z, 3) RAS displacement (mm) and affine."""
+    """Read an ITK field file; returns the (X, Y, Z, 3) RAS displacement (mm) and affine.
+
+    The displacement is the first three channels of a voxel-interleaved block
+    (:func:`nl_unwarp.compose.empty_interleaved`, fourth channel 1), the layout
+    that the one-pass kernel reads four channels at a time; it is made in the
+    one pass that converts LPS to RAS.
+    """
     src = str(path)
     try:
         img = nib.load(src)
@@ -54,4 +61,8 @@ def read_itk_field(path: str | Path) -> tuple[np.ndarray, np.ndarray]:
     code = int(img.header["intent_code"])
     if code != INTENT_VECTOR:
         raise InputError(src, f"header field intent_code is {code}; expected {INTENT_VECTOR} (vector, LPS)")
-    return _ras_lps(data[:, :, :, 0, :].astype(np.float32)), np.asarray(img.affine, dtype=float)
+    block = empty_interleaved(data.shape[:3])
+    np.multiply(data[:, :, :, 0, :], np.diag(LPS_FROM_RAS).astype(np.float32), out=block[..., :3],
+                casting="unsafe")
+    block[..., 3] = 1.0
+    return block[..., :3], np.asarray(img.affine, dtype=float)
