@@ -224,10 +224,11 @@ def radius_squared_exceeds(linear, origin, radius_sq, out):
 
 # Chains of pull maps (nl_unwarp.compose). A chain is a small program of steps
 # (kinds below), followed per target voxel. Fields and factor maps are float32
-# buffers in NIfTI's memory order (x fastest; a field's components follow one
-# another as whole volumes), passed by address: a Fortran-ordered array is used
-# without a copy, and fetching a buffer inside the loop costs no reference
-# counting (tuples of arrays do, and two threads then contend for the counts).
+# buffers with voxels x fastest, evenly spaced (a field's components as whole
+# volumes, or a voxel's channels side by side as in our warps), passed by
+# address with their steps: either layout is used without a copy, and fetching
+# a buffer inside the loop costs no reference counting (tuples of arrays do,
+# and two threads then contend for the counts).
 # The caller keeps the buffers alive for the call (nl_unwarp.compose does).
 
 #: Step kinds of a chain program (row ``(kind, a, b, o0, o1, o2)``):
@@ -461,46 +462,47 @@ def _follow(i, j, k, x, y, z, program, affines, addresses, sizes, dims, maps):
             x, y, z = _point_n(affines, a, x, y, z)
             continue
         nx, ny, nz = dims[a, 0], dims[a, 1], dims[a, 2]
+        ns, cs = dims[a, 3], dims[a, 4]  # floats between voxels, between channels
         plane = nx * ny
         v = _buffer(addresses, sizes, a)
         if kind == STEP_FIELD_NODES or kind == STEP_FACTOR_NODES:
             ii, jj, kk = i + program[s, 3], j + program[s, 4], k + program[s, 5]
             if kind == STEP_FACTOR_NODES:
-                f *= v[_clamp(ii, nx) + nx * _clamp(jj, ny) + plane * _clamp(kk, nz)]
+                f *= v[ns * (_clamp(ii, nx) + nx * _clamp(jj, ny) + plane * _clamp(kk, nz))]
             elif 0 <= ii < nx and 0 <= jj < ny and 0 <= kk < nz:
-                o = ii + nx * jj + plane * kk
-                vol = plane * nz
+                o = ns * (ii + nx * jj + plane * kk)
                 x += v[o]
-                y += v[o + vol]
-                z += v[o + 2 * vol]
+                y += v[o + cs]
+                z += v[o + 2 * cs]
             else:
                 miss = True
             continue
         gi, gj, gk = _point_n(maps, a, x, y, z)
         if kind == STEP_FACTOR:
-            f *= _factor_at(v, nx, ny, nz, gi, gj, gk, 1, 0)
+            f *= _factor_at(v, nx, ny, nz, gi, gj, gk, ns, 0)
             continue
         inside = -0.5 <= gi <= nx - 0.5 and -0.5 <= gj <= ny - 0.5 and -0.5 <= gk <= nz - 0.5
         if not inside:
             if kind == STEP_FIELD_FACTOR:
                 b = program[s, 2]
                 f *= _factor_at(_buffer(addresses, sizes, b), dims[b, 0], dims[b, 1], dims[b, 2],
-                                gi + program[s, 3], gj + program[s, 4], gk + program[s, 5], 1, 0)
+                                gi + program[s, 3], gj + program[s, 4], gk + program[s, 5], dims[b, 3], 0)
             miss = True
             continue
         bi, ti = _floor(gi)
         bj, tj = _floor(gj)
         bk, tk = _floor(gk)
         o, di, dj, dk = _cell(nx, ny, nz, bi, bj, bk)
-        vol = plane * nz
+        o, di, dj, dk = ns * o, ns * di, ns * dj, ns * dk
         dx = _blend(v, o, di, dj, dk, ti, tj, tk)
-        dy = _blend(v, o + vol, di, dj, dk, ti, tj, tk)
-        dz = _blend(v, o + 2 * vol, di, dj, dk, ti, tj, tk)
+        dy = _blend(v, o + cs, di, dj, dk, ti, tj, tk)
+        dz = _blend(v, o + 2 * cs, di, dj, dk, ti, tj, tk)
         if kind == STEP_FIELD_FACTOR:
             b = program[s, 2]
             o, di, dj, dk = _cell(dims[b, 0], dims[b, 1], dims[b, 2], bi + program[s, 3], bj + program[s, 4],
                                   bk + program[s, 5])
-            f *= _blend(_buffer(addresses, sizes, b), o, di, dj, dk, ti, tj, tk)
+            nb = dims[b, 3]
+            f *= _blend(_buffer(addresses, sizes, b), nb * o, nb * di, nb * dj, nb * dk, ti, tj, tk)
         x += dx
         y += dy
         z += dz
@@ -575,9 +577,11 @@ def fold_chain(target_map, raw_map, raw_dims, use_raw, program, affines, address
         Pull matrices, RAS mm.
     addresses, sizes : (B,) int64 ndarray
         Address and length (float32 items) of each buffer: field displacements
-        (RAS mm, x fastest, components slowest) and factor maps.
-    dims : (B, 3) int64 ndarray
-        Grid shape of each buffer.
+        (RAS mm) and factor maps, voxels x fastest.
+    dims : (B, 5) int64 ndarray
+        Grid shape of each buffer, then its step (float32 items) from a voxel to
+        the next and from a channel to the next: ``1`` and ``X Y Z`` for
+        Fortran order, ``4`` and ``1`` for a voxel-interleaved warp.
     maps : (B, 3, 4) float64 ndarray
         World RAS mm -> buffer voxel index.
     disp : (X, Y, Z, 3) float32 ndarray
@@ -627,8 +631,8 @@ def fold_chain_and_sample(coef, order, fill, target_map, raw_map, program, affin
 
 @numba.njit(parallel=True, cache=True, fastmath=FAST_MATH)
 def field_affine_field_sample(coef, order, fill, target_map, first, first_offset, use_first, matrix,
-                              last, last_dims, last_map, use_last, packed, jac, jac_dims, jac_offset,
-                              jac_lattice, jac_map, use_jac, jac_in_last, raw_map, out, missed):
+                              last, last_dims, last_map, use_last, packed, jac, jac_dims, jac_step,
+                              jac_offset, jac_lattice, jac_map, use_jac, jac_in_last, raw_map, out, missed):
     """:func:`fold_chain_and_sample` for the chain shape ``[W, A, G (x J)]``, unrolled.
 
     ``W`` (optional) is a field on the target lattice, read at its nodes
@@ -663,8 +667,9 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
         ``G``'s grid shape.
     last_map : (3, 4) float64 ndarray
         World RAS mm -> ``G``'s voxel index.
-    jac : (X'' Y'' Z'',) float32 ndarray
-        The factor map ``J``, flat, x fastest (read if ``use_jac`` and not ``jac_in_last``).
+    jac : float32 ndarray
+        The factor map ``J``, flat, x fastest, ``jac_step`` items from a voxel to
+        the next (read if ``use_jac`` and not ``jac_in_last``).
     jac_dims, jac_offset : (3,) int64 ndarray
         ``J``'s grid shape, and its voxel index of ``G``'s voxel (0, 0, 0).
     jac_lattice : bool
@@ -709,7 +714,7 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
                 f = 1.0
                 if use_jac and not jac_lattice:  # J on its own grid, sampled where G is
                     ji, jj, jk = _point(jac_map, x, y, z)
-                    f = _factor_at(jac, jx, jy, jz, ji, jj, jk, 1, 0)
+                    f = _factor_at(jac, jx, jy, jz, ji, jj, jk, jac_step, 0)
                 if use_last:
                     gi, gj, gk = _point(last_map, x, y, z)
                     if -0.5 <= gi <= gx - 0.5 and -0.5 <= gj <= gy - 0.5 and -0.5 <= gk <= gz - 0.5:
@@ -723,6 +728,7 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
                             jo, jdi, jdj, jdk = o, di, dj, dk
                             if not same_cells:
                                 jo, jdi, jdj, jdk = _cell(jx, jy, jz, bi + ox, bj + oy, bk + oz)
+                            jo, jdi, jdj, jdk = jac_step * jo, jac_step * jdi, jac_step * jdj, jac_step * jdk
                         if packed:
                             dx, dy, dz, fg = _blend_nodes4(last, 4 * o, 4 * di, 4 * dj, 4 * dk, ti, tj_, tk_)
                             if j_shares:
@@ -739,7 +745,7 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
                         if jac_in_last:
                             f = _factor_at(last, gx, gy, gz, gi, gj, gk, 4, 3)
                         elif j_shares:
-                            f = _factor_at(jac, jx, jy, jz, gi + ox, gj + oy, gk + oz, 1, 0)
+                            f = _factor_at(jac, jx, jy, jz, gi + ox, gj + oy, gk + oz, jac_step, 0)
                         miss = True
                 ends[i, 0], ends[i, 1], ends[i, 2] = _point(raw_map, x, y, z)
                 ends[i, 3] = f

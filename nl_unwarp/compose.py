@@ -62,6 +62,7 @@ __all__ = [
     "affine_pull_points",
     "compose_chain",
     "empty_interleaved",
+    "flat_buffer",
     "grid_with_margin",
     "interleaved_block",
     "margin_slices",
@@ -123,6 +124,42 @@ def empty_interleaved(shape: Sequence[int]) -> np.ndarray:
     return np.empty((nz, ny, nx, 4), np.float32).transpose(2, 1, 0, 3)
 
 
+def _owner_holds(values: np.ndarray, extent: int) -> bool:
+    """Whether ``extent`` float32 items from ``values``' first item lie in the contiguous array
+    that ``values`` is a view of (so a flat view of them reads nothing past its end)."""
+    owner = values
+    while isinstance(owner.base, np.ndarray):
+        owner = owner.base
+    if not (owner.flags.c_contiguous or owner.flags.f_contiguous):
+        return False
+    low = owner.__array_interface__["data"][0]
+    start = values.__array_interface__["data"][0]
+    return low <= start and start + 4 * extent <= low + owner.nbytes
+
+
+def flat_buffer(values: np.ndarray) -> tuple[np.ndarray, int, int]:
+    """A flat float32 view of (X, Y, Z[, C]) values, with the step from a voxel to the next and
+    from a channel to the next (in items), for the chain kernels.
+
+    No copy when the voxels are evenly spaced and x fastest: Fortran order (steps ``1`` and
+    ``X Y Z``), a voxel-interleaved warp or one channel of it (step ``4`` between voxels).
+    Any other layout is copied to Fortran order first.
+    """
+    nx, ny, nz = values.shape[:3]
+    nc = values.shape[3] if values.ndim == 4 else 1
+    if values.dtype == np.float32 and all(st % 4 == 0 and st > 0 for st in values.strides):
+        node = values.strides[0] // 4
+        channel = values.strides[3] // 4 if values.ndim == 4 else 0
+        regular = ((ny == 1 or values.strides[1] == 4 * node * nx)
+                   and (nz == 1 or values.strides[2] == 4 * node * nx * ny))
+        extent = (nx * ny * nz - 1) * node + (nc - 1) * channel + 1
+        if regular and (nx > 1 or ny * nz == 1) and _owner_holds(values, extent):
+            flat = np.lib.stride_tricks.as_strided(values, shape=(extent,), strides=(4,), writeable=False)
+            return flat, node, channel
+    fortran = np.asfortranarray(values, dtype=np.float32)
+    return fortran.ravel(order="F"), 1, nx * ny * nz
+
+
 def interleaved_block(disp_ras_mm: np.ndarray) -> np.ndarray | None:
     """The flat float32 block of ``4 X Y Z`` values behind a displacement whose voxels each hold
     four channels side by side (``dx, dy, dz`` and a fourth, the Jacobian determinant in a warp
@@ -139,14 +176,7 @@ def interleaved_block(disp_ras_mm: np.ndarray) -> np.ndarray | None:
     expected = (16, 16 * d.shape[0], 16 * d.shape[0] * d.shape[1])
     if any(n > 1 and st != e for st, e, n in zip(d.strides[:3], expected, d.shape[:3], strict=True)):
         return None
-    owner = d
-    while isinstance(owner.base, np.ndarray):
-        owner = owner.base
-    if not (owner.flags.c_contiguous or owner.flags.f_contiguous):
-        return None
-    low = owner.__array_interface__["data"][0]
-    start = d.__array_interface__["data"][0]
-    if start < low or start + 16 * size > low + owner.nbytes:
+    if not _owner_holds(d, 4 * size):
         return None
     return np.lib.stride_tricks.as_strided(d, shape=(4 * size,), strides=(4,), writeable=False)
 
@@ -412,8 +442,9 @@ class _Program:
         self._flush(pending)
 
     def _buffer(self, values: np.ndarray, affine: np.ndarray) -> int:
-        self.buffers.append(values.ravel(order="F"))
-        self.dims.append(tuple(values.shape[:3]))
+        flat, node_step, channel_step = flat_buffer(values)
+        self.buffers.append(flat)
+        self.dims.append((*values.shape[:3], node_step, channel_step))
         self.maps.append(_world_to_index(affine))
         return len(self.buffers) - 1
 
@@ -469,7 +500,7 @@ class _Program:
                 np.ascontiguousarray(self.affines if self.affines else np.zeros((1, 3, 4)), dtype=float),
                 np.array([b.ctypes.data for b in buffers], np.int64),
                 np.array([b.size for b in buffers], np.int64),
-                np.ascontiguousarray(self.dims if self.dims else np.ones((1, 3)), dtype=np.int64),
+                np.ascontiguousarray(self.dims if self.dims else np.ones((1, 5)), dtype=np.int64),
                 np.ascontiguousarray(self.maps if self.maps else np.zeros((1, 3, 4)), dtype=float))
 
 
@@ -526,10 +557,10 @@ def _unrolled_arguments(steps: Sequence[Step], target_shape, target_affine: np.n
     # Flat views that the kernel reads through cell offsets: no copies for a warp as
     # compute_warp makes it (voxel-interleaved) or Fortran-ordered fields and maps.
     flat_last = block if block is not None else last.reshape(-1, order="F")
-    flat_jac = _NO_FACTOR.reshape(-1) if jac_in_last else jac.reshape(-1, order="F")
+    flat_jac, jac_step, _ = flat_buffer(_NO_FACTOR if jac_in_last else jac)
     return (first, offset, first is not _NO_FIELD, np.ascontiguousarray(matrix[:3]),
             flat_last, np.array(last.shape[:3], np.int64), last_map, last is not _NO_FIELD, block is not None,
-            flat_jac, np.array(jac.shape, np.int64),
+            flat_jac, np.array(jac.shape, np.int64), jac_step,
             np.zeros(3, np.int64) if jac_offset is None else jac_offset, jac_offset is not None, jac_map,
             jac is not _NO_FACTOR, jac_in_last)
 

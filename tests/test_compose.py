@@ -325,13 +325,40 @@ def test_interleaved_fields_give_the_planar_numbers_to_the_bit(shape_name):
     shape = (14, 15, 13)
     aff = _oblique(shape, (2.5, 3.0, 3.2), 20.0, (0, 0, 0))
     planar = _unrolled_chain(shape_name, shape, aff)
-    interleaved = planar[:-1] + [_interleaved(planar[-1])]
+    interleaved = [_interleaved(s) if isinstance(s, FieldStep) else s for s in planar]
+    # A factor map given as one channel of a voxel-interleaved block (a warp's Jacobian).
+    interleaved = [FactorStep(_interleaved(FieldStep(np.zeros(s.values.shape + (3,)), s.affine,
+                                                     s.values)).jacobian, s.affine)
+                   if isinstance(s, FactorStep) else s for s in interleaved]
     raw, raw_aff = _raw_for_sampling()
-    for order in (0, 1, 3):
-        a = resample_chain(raw, raw_aff, planar, shape, aff, order=order, fill=FILL, on_outside="ignore")
-        b = resample_chain(raw, raw_aff, interleaved, shape, aff, order=order, fill=FILL, on_outside="ignore")
+    for order, unroll in [(0, True), (1, True), (3, True), (3, False)]:
+        a = resample_chain(raw, raw_aff, planar, shape, aff, order=order, fill=FILL, on_outside="ignore",
+                           unroll=unroll)
+        b = resample_chain(raw, raw_aff, interleaved, shape, aff, order=order, fill=FILL,
+                           on_outside="ignore", unroll=unroll)
         np.testing.assert_array_equal(a.data, b.data)
         np.testing.assert_array_equal(a.uncovered, b.uncovered)
+    a = compose_chain(planar, shape, aff, on_outside="ignore")
+    b = compose_chain(interleaved, shape, aff, on_outside="ignore")
+    np.testing.assert_array_equal(a.disp_ras_mm, b.disp_ras_mm)
+    np.testing.assert_array_equal(a.factor, b.factor)
+
+
+def test_flat_buffers_read_either_layout_without_a_copy():
+    from nl_unwarp.compose import flat_buffer
+
+    planar = np.zeros((5, 6, 7, 3), np.float32, order="F")
+    flat, node, channel = flat_buffer(planar)
+    assert (node, channel) == (1, 5 * 6 * 7) and np.shares_memory(flat, planar)
+    warp = _interleaved(FieldStep(planar, np.eye(4), np.ones((5, 6, 7), np.float32)))
+    flat, node, channel = flat_buffer(warp.disp_ras_mm)
+    assert (node, channel) == (4, 1) and np.shares_memory(flat, warp.disp_ras_mm)
+    flat, node, _ = flat_buffer(warp.jacobian)
+    assert node == 4 and flat[0] == 1.0 and flat.size == 4 * 5 * 6 * 7 - 3
+    c_order = np.arange(5 * 6 * 7, dtype=np.float32).reshape(5, 6, 7)
+    flat, node, _ = flat_buffer(c_order)  # copied to Fortran order
+    assert node == 1 and not np.shares_memory(flat, c_order)
+    np.testing.assert_array_equal(flat, c_order.ravel(order="F"))
 
 
 def test_interleaved_block_only_for_a_whole_four_channel_block():
