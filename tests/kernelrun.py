@@ -58,12 +58,14 @@ def main(out: str) -> None:
     inner = margin_slices(SHAPE, warp.disp_ras_mm.shape[:3])
     correction = [FactorStep(np.asfortranarray(warp.jacobian[inner]), affine),
                   FieldStep(warp.disp_ras_mm, grown_affine)]
+    # The same with the field in three planar volumes (a Fortran-ordered field from elsewhere).
+    planar = correction[:1] + [FieldStep(np.asfortranarray(warp.disp_ras_mm), grown_affine)]
     results = {}
     for order in (0, 1, 3):
         results[f"pull_{order}"] = resample_volume(image, affine, warp.disp_ras_mm, grown_affine,
                                                    jacobian=warp.jacobian, order=order)
         for unroll in (True, False):  # field_affine_field_sample, fold_chain_and_sample
-            for name, steps in (("chain", chain), ("correction", correction)):
+            for name, steps in (("chain", chain), ("correction", correction), ("planar", planar)):
                 results[f"{name}_{order}_{unroll}"] = resample_chain(
                     image, affine, steps, SHAPE, affine, order=order, unroll=unroll, on_outside="ignore").data
     composed = compose_chain(chain, SHAPE, affine, on_outside="ignore")  # fold_chain
