@@ -444,7 +444,6 @@ def _cmd_plan(args, progress: _Progress) -> None:
 
 
 def _cmd_bids_app(args, progress: _Progress) -> None:
-    from .api import check_field_spacing
     from .bids.app import build_plan, run
 
     options = _bids_options(args)
@@ -453,7 +452,6 @@ def _cmd_bids_app(args, progress: _Progress) -> None:
     options.n_procs, options.omp_nthreads = args.nprocs, args.omp_nthreads
     options.order, options.jacobian = args.order, not args.no_jacobian
     options.emit_warp_for_skipped = args.emit_warp_for_skipped
-    check_field_spacing(args.field_spacing)
     options.field_spacing_mm = args.field_spacing
     options.progress = progress.nodes
     progress.step(f"indexing {args.bids_dir} and deciding per image")

@@ -219,6 +219,14 @@ def test_bids_app_field_spacing(study, tmp_path, capsys):
             "--session-label", "1", "--suffix", "T1w", "--quiet"]
     assert main(args + ["--field-spacing", "0"]) == 1
     assert "--field-spacing" in capsys.readouterr().err and not (tmp_path / "out").exists()
+    # The library entry refuses it too (one-line InputError, not a nipype trait error).
+    from nl_unwarp.bids.app import RunOptions, run
+    from nl_unwarp.errors import InputError
+
+    with pytest.raises(InputError, match="--field-spacing"):
+        run(RunOptions(bids_dir=study.root, output_dir=tmp_path / "out", site_config=study.site_config,
+                       field_spacing_mm=-1.0))
+    assert not (tmp_path / "out").exists()
     assert main(args + ["--field-spacing", "3"]) == 0
     out = tmp_path / "out"
     field = nib.load(out / derivative_name(T1W, "field"))

@@ -57,10 +57,18 @@ class RunOptions:
     progress: Callable[[int, int], None] | None = None
 
 
+def check_options(options: RunOptions) -> None:
+    """Refuse option values that no image could use (before any indexing or writing)."""
+    from ..api import check_field_spacing
+
+    check_field_spacing(options.field_spacing_mm)
+
+
 def build_plan(options: RunOptions) -> Plan:
     """Index the dataset and decide for every selected image (nothing computed)."""
     from .siteconfig import SiteConfig, load_site_config
 
+    check_options(options)
     check_dirs(options.bids_dir, options.output_dir, options.work_dir)
     if options.site_config is None and options.coil_override is None:
         raise InputError("--site-config", "give a site configuration (or a coil model override)")
@@ -295,6 +303,7 @@ def run(options: RunOptions, *, plan: Plan | None = None) -> tuple[list[dict], l
     from ..workflows.bids import init_bids_unwarp_wf
     from .derivatives import check_description, ensure_dataset, remove_partial_files
 
+    check_options(options)
     plan = plan or build_plan(options)
     plan.raise_problems()
     output_dir = Path(options.output_dir).resolve()
