@@ -49,8 +49,10 @@ used for the image), which is what a pipeline that composes later runs first;
 and the three again with the 2 mm field (a plain correction writing a 2 mm
 field computes the 1 mm warp of the image and the 2 mm field: one more warp
 stage). One more row gives the last reading with the Jacobian map on the raw
-grid (the BIDS app's layout). The last row is the peer's: our one pass
-against SimpleITK's. Nothing is asserted.
+grid (the BIDS app's layout), and one the fields-given reading with the 1 mm
+field as read back from its file (the layout the compose command and
+``ResampleOnce`` meet). The last row is the peer's: our one pass against
+SimpleITK's. Nothing is asserted.
 
 Usage: python benchmarks/bench_compose.py [--repeats N] [--quick]
 """
