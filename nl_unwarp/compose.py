@@ -137,6 +137,18 @@ def _owner_holds(values: np.ndarray, extent: int) -> bool:
     return low <= start and start + 4 * extent <= low + owner.nbytes
 
 
+def _steps(values: np.ndarray) -> tuple[int, int] | None:
+    """Float32 items from a voxel to the next and from a channel to the next of (X, Y, Z[, C])
+    float32 values whose voxels are evenly spaced and x fastest; None for other layouts."""
+    nx, ny, nz = values.shape[:3]
+    if values.dtype != np.float32 or not all(st % 4 == 0 and st > 0 for st in values.strides):
+        return None
+    node = values.strides[0] // 4
+    regular = ((nx > 1 or ny * nz == 1) and (ny == 1 or values.strides[1] == 4 * node * nx)
+               and (nz == 1 or values.strides[2] == 4 * node * nx * ny))
+    return (node, values.strides[3] // 4 if values.ndim == 4 else 0) if regular else None
+
+
 def flat_buffer(values: np.ndarray) -> tuple[np.ndarray, int, int]:
     """A flat float32 view of (X, Y, Z[, C]) values, with the step from a voxel to the next and
     from a channel to the next (in items), for the chain kernels.
@@ -145,19 +157,15 @@ def flat_buffer(values: np.ndarray) -> tuple[np.ndarray, int, int]:
     ``X Y Z``), a voxel-interleaved warp or one channel of it (step ``4`` between voxels).
     Any other layout is copied to Fortran order first.
     """
-    nx, ny, nz = values.shape[:3]
-    nc = values.shape[3] if values.ndim == 4 else 1
-    if values.dtype == np.float32 and all(st % 4 == 0 and st > 0 for st in values.strides):
-        node = values.strides[0] // 4
-        channel = values.strides[3] // 4 if values.ndim == 4 else 0
-        regular = ((ny == 1 or values.strides[1] == 4 * node * nx)
-                   and (nz == 1 or values.strides[2] == 4 * node * nx * ny))
-        extent = (nx * ny * nz - 1) * node + (nc - 1) * channel + 1
-        if regular and (nx > 1 or ny * nz == 1) and _owner_holds(values, extent):
-            flat = np.lib.stride_tricks.as_strided(values, shape=(extent,), strides=(4,), writeable=False)
-            return flat, node, channel
-    fortran = np.asfortranarray(values, dtype=np.float32)
-    return fortran.ravel(order="F"), 1, nx * ny * nz
+    steps = _steps(values)
+    size = values.shape[0] * values.shape[1] * values.shape[2]
+    if steps is not None:
+        nc = values.shape[3] if values.ndim == 4 else 1
+        extent = (size - 1) * steps[0] + (nc - 1) * steps[1] + 1
+        if _owner_holds(values, extent):
+            return (np.lib.stride_tricks.as_strided(values, shape=(extent,), strides=(4,), writeable=False),
+                    *steps)
+    return np.asfortranarray(values, dtype=np.float32).ravel(order="F"), 1, size
 
 
 def interleaved_block(disp_ras_mm: np.ndarray) -> np.ndarray | None:
@@ -170,15 +178,12 @@ def interleaved_block(disp_ras_mm: np.ndarray) -> np.ndarray | None:
     ``warp[..., 1:4]`` of a wider array is refused rather than read past its end.
     """
     d = disp_ras_mm
-    if d.dtype != np.float32 or d.ndim != 4 or d.shape[3] != 3 or d.strides[3] != 4:
+    if d.ndim != 4 or d.shape[3] != 3 or _steps(d) != (4, 1):
         return None
-    size = d.shape[0] * d.shape[1] * d.shape[2]
-    expected = (16, 16 * d.shape[0], 16 * d.shape[0] * d.shape[1])
-    if any(n > 1 and st != e for st, e, n in zip(d.strides[:3], expected, d.shape[:3], strict=True)):
+    size = 4 * d.shape[0] * d.shape[1] * d.shape[2]
+    if not _owner_holds(d, size):
         return None
-    if not _owner_holds(d, 4 * size):
-        return None
-    return np.lib.stride_tricks.as_strided(d, shape=(4 * size,), strides=(4,), writeable=False)
+    return np.lib.stride_tricks.as_strided(d, shape=(size,), strides=(4,), writeable=False)
 
 
 @dataclass(frozen=True)
