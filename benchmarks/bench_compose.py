@@ -221,14 +221,15 @@ def main() -> None:
                                                              on_outside="ignore"))
         record("once generic", lambda c=chain: resample_chain(raw, raw_aff, c, shape, target_aff,
                                                               on_outside="ignore", unroll=False))
-        files_chain = registration + [FactorStep(warp.jacobian, raw_aff), g_file]
+        files_chain = registration + [FactorStep(np.asfortranarray(warp.jacobian), raw_aff), g_file]
         record("once files", lambda c=files_chain: resample_chain(raw, raw_aff, c, shape, target_aff,
                                                                   on_outside="ignore"))
         coarse = record("coarse warp", lambda: compute_warp(coil, coarse_shape, coarse_aff, frame))
         coarse_chain = chain_of(coarse)
         once_coarse = record("once coarse", lambda c=coarse_chain: resample_chain(
             raw, raw_aff, c, shape, target_aff, on_outside="ignore"))
-        raw_j_chain = registration + [FactorStep(warp.jacobian, raw_aff),
+        # The Jacobian map as the BIDS app's files give it: one volume, Fortran order.
+        raw_j_chain = registration + [FactorStep(np.asfortranarray(warp.jacobian), raw_aff),
                                       FieldStep(coarse.disp_ras_mm, coarse.affine)]
         record("once coarse J raw", lambda c=raw_j_chain: resample_chain(raw, raw_aff, c, shape, target_aff,
                                                                           on_outside="ignore"))
