@@ -630,8 +630,8 @@ def fold_chain_and_sample(coef, order, fill, target_map, raw_map, program, affin
 
 
 @numba.njit(parallel=True, cache=True, fastmath=FAST_MATH)
-def field_affine_field_sample(coef, order, fill, target_map, first, first_offset, use_first, matrix,
-                              last, last_dims, last_map, use_last, packed, jac, jac_dims, jac_step,
+def field_affine_field_sample(coef, order, fill, target_map, first, first_dims, first_offset, use_first,
+                              matrix, last, last_dims, last_map, use_last, packed, jac, jac_dims, jac_step,
                               jac_offset, jac_lattice, jac_map, use_jac, jac_in_last, raw_map, out, missed):
     """:func:`fold_chain_and_sample` for the chain shape ``[W, A, G (x J)]``, unrolled.
 
@@ -653,8 +653,11 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
 
     Parameters
     ----------
-    first : (X, Y, Z, 3) float32 ndarray
-        ``W``'s displacement, RAS mm (read if ``use_first``).
+    first : float32 ndarray
+        ``W``'s displacement, RAS mm, flat, voxels x fastest (read if ``use_first``).
+    first_dims : (5,) int64 ndarray
+        ``W``'s grid shape, then its steps (items) from a voxel to the next and from a
+        component to the next (a row of ``dims`` in :func:`fold_chain`).
     first_offset : (3,) int64 ndarray
         ``W``'s voxel index of target voxel (0, 0, 0).
     matrix : (3, 4) float64 ndarray
@@ -683,7 +686,7 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
     Other parameters as for :func:`fold_chain_and_sample`.
     """
     nx, ny, nz = out.shape
-    fx, fy, fz = first.shape[0], first.shape[1], first.shape[2]
+    fx, fy, fz, fn, fc = first_dims[0], first_dims[1], first_dims[2], first_dims[3], first_dims[4]
     gx, gy, gz = last_dims[0], last_dims[1], last_dims[2]
     jx, jy, jz = jac_dims[0], jac_dims[1], jac_dims[2]
     ox, oy, oz = jac_offset[0], jac_offset[1], jac_offset[2]
@@ -705,9 +708,10 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_offset
                 if use_first:
                     ii, jj, kk = i + first_offset[0], j + first_offset[1], k + first_offset[2]
                     if 0 <= ii < fx and 0 <= jj < fy and 0 <= kk < fz:
-                        x += first[ii, jj, kk, 0]
-                        y += first[ii, jj, kk, 1]
-                        z += first[ii, jj, kk, 2]
+                        o = fn * (ii + fx * jj + fx * fy * kk)
+                        x += first[o]
+                        y += first[o + fc]
+                        z += first[o + 2 * fc]
                     else:
                         miss = True
                 x, y, z = _point(matrix, x, y, z)

@@ -163,8 +163,7 @@ def flat_buffer(values: np.ndarray) -> tuple[np.ndarray, int, int]:
         nc = values.shape[3] if values.ndim == 4 else 1
         extent = (size - 1) * steps[0] + (nc - 1) * steps[1] + 1
         if _owner_holds(values, extent):
-            return (np.lib.stride_tricks.as_strided(values, shape=(extent,), strides=(4,), writeable=False),
-                    *steps)
+            return np.lib.stride_tricks.as_strided(values, shape=(extent,), strides=(4,)), *steps
     return np.asfortranarray(values, dtype=np.float32).ravel(order="F"), 1, size
 
 
@@ -183,7 +182,7 @@ def interleaved_block(disp_ras_mm: np.ndarray) -> np.ndarray | None:
     size = 4 * d.shape[0] * d.shape[1] * d.shape[2]
     if not _owner_holds(d, size):
         return None
-    return np.lib.stride_tricks.as_strided(d, shape=(size,), strides=(4,), writeable=False)
+    return np.lib.stride_tricks.as_strided(d, shape=(size,), strides=(4,))
 
 
 @dataclass(frozen=True)
@@ -563,7 +562,9 @@ def _unrolled_arguments(steps: Sequence[Step], target_shape, target_affine: np.n
     # compute_warp makes it (voxel-interleaved) or Fortran-ordered fields and maps.
     flat_last = block if block is not None else last.reshape(-1, order="F")
     flat_jac, jac_step, _ = flat_buffer(_NO_FACTOR if jac_in_last else jac)
-    return (first, offset, first is not _NO_FIELD, np.ascontiguousarray(matrix[:3]),
+    flat_first, *first_steps = flat_buffer(first)
+    return (flat_first, np.array([*first.shape[:3], *first_steps], np.int64), offset, first is not _NO_FIELD,
+            np.ascontiguousarray(matrix[:3]),
             flat_last, np.array(last.shape[:3], np.int64), last_map, last is not _NO_FIELD, block is not None,
             flat_jac, np.array(jac.shape, np.int64), jac_step,
             np.zeros(3, np.int64) if jac_offset is None else jac_offset, jac_offset is not None, jac_map,

@@ -301,7 +301,7 @@ def test_unrolled_chains_match_scipy_at_the_chain_points(order, shape_name):
     chain = _unrolled_chain(shape_name, shape, aff)
     unrolled = _unrolled_arguments(chain, shape, aff)
     assert unrolled is not None  # the path under test
-    assert unrolled[8] == ("interleaved" in shape_name)  # G read four channels per 16-byte load
+    assert unrolled[9] == ("interleaved" in shape_name)  # the packed flag: G read four channels per load
     raw, raw_aff = _raw_for_sampling()
     got = resample_chain(raw, raw_aff, chain, shape, aff, order=order, fill=FILL, on_outside="ignore")
     expected, inside, ref_missed = _scipy_at_chain_points(chain, shape, aff, raw, raw_aff, order)
