@@ -85,7 +85,8 @@ def _affine(shape, centre=(0.0, 0.0, 0.0)) -> np.ndarray:
 def _registration(shape):
     """An affine (6 degrees, 3 % scale) and a smooth 1 mm warp of a few mm on the target grid.
 
-    The warp is Fortran-ordered (x fastest), as a field read from a NIfTI file is.
+    The warp is Fortran-ordered (x fastest), three planar volumes (the kernel reads it at its
+    nodes with its steps; a field read by ``read_itk_field`` is voxel-interleaved instead).
     """
     a = np.deg2rad(6.0)
     m = np.eye(4)
