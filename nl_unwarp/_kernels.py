@@ -238,18 +238,28 @@ def radius_squared_exceeds(linear, origin, radius_sq, out):
 #: sharing the interpolation weights; a field, or a factor map, whose nodes
 #: are the target grid's (index = target index + o): read there, no weights.
 STEP_AFFINE, STEP_FIELD, STEP_FACTOR, STEP_FIELD_FACTOR, STEP_FIELD_NODES, STEP_FACTOR_NODES = range(6)
-#: Target voxels are visited in tiles of TILE x TILE lines along x (one tile
-#: per parallel task): neighbouring lines in y and z are then visited close
-#: in time, and the parts of the fields and of the raw image they read are
-#: still in cache when reused (a rotated chain drifts across rows).
+#: Target voxels are visited in tiles of TILE_X voxels along x by TILE x TILE
+#: lines (one tile per parallel task): neighbouring lines in y and z are then
+#: visited close in time, and the parts of the fields and of the raw image they
+#: read are still in cache when reused. Short segments along x keep a tile's
+#: footprint small where a rotated chain drifts across rows along a line.
 TILE = 16
+TILE_X = 32
 
 
 @numba.njit(inline="always", cache=True)
-def _tile_line(tile, row, tiles_j):
-    """``(j, k)`` of line ``row`` of tile ``tile`` (tiles of TILE x TILE lines along x, ``tiles_j``
-    tiles across y)."""
-    return (tile % tiles_j) * TILE + row % TILE, (tile // tiles_j) * TILE + row // TILE
+def _tile_segment(tile, row, tiles_i, tiles_j):
+    """``(i0, j, k)`` of segment ``row`` of tile ``tile``: its first voxel along x and its line
+    (``tiles_i`` tiles along x, ``tiles_j`` across y)."""
+    rest = tile // tiles_i
+    j, k = (rest % tiles_j) * TILE + row % TILE, (rest // tiles_j) * TILE + row // TILE
+    return (tile % tiles_i) * TILE_X, j, k
+
+
+@numba.njit(inline="always", cache=True)
+def _tile_counts(nx, ny, nz):
+    """Tiles along x, across y and across z."""
+    return (nx + TILE_X - 1) // TILE_X, (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
 
 
 @intrinsic
@@ -526,32 +536,34 @@ def _fold_voxel(i, j, k, target_map, raw_map, raw_dims, use_raw, program, affine
 
 
 @numba.njit(inline="always", cache=True)
-def _end_voxel(i, j, k, target_map, raw_map, program, affines, addresses, sizes, dims, maps, ends):
-    """Pass 1 of a line of :func:`fold_chain_and_sample`: the end point of voxel ``i`` as a raw
-    voxel index, its factor and its miss flag, into row ``i`` of ``ends``."""
+def _end_voxel(i, j, k, target_map, raw_map, program, affines, addresses, sizes, dims, maps, ends, e):
+    """Pass 1 of a segment of :func:`fold_chain_and_sample`: the end point of voxel ``i`` as a
+    raw voxel index, its factor and its miss flag, into row ``e`` of ``ends``."""
     px, py, pz = _point(target_map, i, j, k)
     x, y, z, f, miss = _follow(i, j, k, px, py, pz, program, affines, addresses, sizes, dims, maps)
-    ends[i, 0], ends[i, 1], ends[i, 2] = _point(raw_map, x, y, z)
-    ends[i, 3] = f
-    ends[i, 4] = 1.0 if miss else 0.0
+    ends[e, 0], ends[e, 1], ends[e, 2] = _point(raw_map, x, y, z)
+    ends[e, 3] = f
+    ends[e, 4] = 1.0 if miss else 0.0
 
 
 @numba.njit(inline="always", cache=True)
-def _sample_line(coef, order, fill, ends, j, k, out, missed, wx, wy, wz):
-    """Pass 2 of a line: sample the raw image at the end points in ``ends`` (see
-    :func:`_end_voxel`), times the factor, or ``fill`` outside the raw field of view.
+def _sample_line(coef, order, fill, ends, i0, i1, j, k, out, missed, wx, wy, wz):
+    """Pass 2 of a segment (voxels ``i0 .. i1 - 1`` of line ``j, k``): sample the raw image at
+    the end points in ``ends`` (see :func:`_end_voxel`), times the factor, or ``fill`` outside
+    the raw field of view.
 
-    A line is followed first and sampled after (two passes over a small
+    A segment is followed first and sampled after (two passes over a small
     buffer) so that the reads of each pass are independent from voxel to voxel
     and the processor overlaps them; in one pass each sample's reads wait for
     the chain's (about 7 % faster, ``benchmarks/bench_compose.py``).
     """
     rx, ry, rz = coef.shape
-    for i in range(out.shape[0]):
-        ri, rj, rk = ends[i, 0], ends[i, 1], ends[i, 2]
+    for i in range(i0, i1):
+        e = i - i0
+        ri, rj, rk = ends[e, 0], ends[e, 1], ends[e, 2]
         if _inside(ri, rx) and _inside(rj, ry) and _inside(rk, rz):
-            out[i, j, k] = _sample(coef, ri, rj, rk, order, wx, wy, wz) * ends[i, 3]
-            missed[i, j, k] = ends[i, 4] != 0.0
+            out[i, j, k] = _sample(coef, ri, rj, rk, order, wx, wy, wz) * ends[e, 3]
+            missed[i, j, k] = ends[e, 4] != 0.0
         else:
             out[i, j, k] = fill
             missed[i, j, k] = False
@@ -592,13 +604,13 @@ def fold_chain(target_map, raw_map, raw_dims, use_raw, program, affines, address
         Target points that met a field outside its grid (written).
     """
     nx, ny, nz = missed.shape
-    tj, tk = (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
-    for tile in numba.prange(tj * tk):
+    nti, ntj, ntk = _tile_counts(nx, ny, nz)
+    for tile in numba.prange(nti * ntj * ntk):
         for row in range(TILE * TILE):
-            j, k = _tile_line(tile, row, tj)
+            i0, j, k = _tile_segment(tile, row, nti, ntj)
             if j >= ny or k >= nz:
                 continue
-            for i in range(nx):
+            for i in range(i0, min(i0 + TILE_X, nx)):
                 _fold_voxel(i, j, k, target_map, raw_map, raw_dims, use_raw, program, affines, addresses,
                             sizes, dims, maps, disp, factor, missed)
 
@@ -616,17 +628,19 @@ def fold_chain_and_sample(coef, order, fill, target_map, raw_map, program, affin
     composed field is stored.
     """
     nx, ny, nz = out.shape
-    tj, tk = (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
-    for tile in numba.prange(tj * tk):
+    nti, ntj, ntk = _tile_counts(nx, ny, nz)
+    for tile in numba.prange(nti * ntj * ntk):
         wx, wy, wz = np.empty(4), np.empty(4), np.empty(4)
-        ends = np.empty((nx, 5))
+        ends = np.empty((TILE_X, 5))
         for row in range(TILE * TILE):
-            j, k = _tile_line(tile, row, tj)
+            i0, j, k = _tile_segment(tile, row, nti, ntj)
             if j >= ny or k >= nz:
                 continue
-            for i in range(nx):
-                _end_voxel(i, j, k, target_map, raw_map, program, affines, addresses, sizes, dims, maps, ends)
-            _sample_line(coef, order, fill, ends, j, k, out, missed, wx, wy, wz)
+            i1 = min(i0 + TILE_X, nx)
+            for i in range(i0, i1):
+                _end_voxel(i, j, k, target_map, raw_map, program, affines, addresses, sizes, dims, maps, ends,
+                           i - i0)
+            _sample_line(coef, order, fill, ends, i0, i1, j, k, out, missed, wx, wy, wz)
 
 
 @numba.njit(parallel=True, cache=True, fastmath=FAST_MATH)
@@ -694,15 +708,16 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_dims, 
     same_cells = jac_lattice and jx == gx and jy == gy and jz == gz and ox == 0 and oy == 0 and oz == 0
     j_shares = use_jac and jac_lattice and not jac_in_last  # J's own buffer, G's weights
     vol = gx * gy * gz
-    tj, tk = (ny + TILE - 1) // TILE, (nz + TILE - 1) // TILE
-    for tile in numba.prange(tj * tk):
+    nti, ntj, ntk = _tile_counts(nx, ny, nz)
+    for tile in numba.prange(nti * ntj * ntk):
         wx, wy, wz = np.empty(4), np.empty(4), np.empty(4)
-        ends = np.empty((nx, 5))
+        ends = np.empty((TILE_X, 5))
         for row in range(TILE * TILE):
-            j, k = _tile_line(tile, row, tj)
+            i0, j, k = _tile_segment(tile, row, nti, ntj)
             if j >= ny or k >= nz:
                 continue
-            for i in range(nx):
+            i1 = min(i0 + TILE_X, nx)
+            for i in range(i0, i1):
                 x, y, z = _point(target_map, i, j, k)
                 miss = False
                 if use_first:
@@ -751,7 +766,8 @@ def field_affine_field_sample(coef, order, fill, target_map, first, first_dims, 
                         elif j_shares:
                             f = _factor_at(jac, jx, jy, jz, gi + ox, gj + oy, gk + oz, jac_step, 0)
                         miss = True
-                ends[i, 0], ends[i, 1], ends[i, 2] = _point(raw_map, x, y, z)
-                ends[i, 3] = f
-                ends[i, 4] = 1.0 if miss else 0.0
-            _sample_line(coef, order, fill, ends, j, k, out, missed, wx, wy, wz)
+                e = i - i0
+                ends[e, 0], ends[e, 1], ends[e, 2] = _point(raw_map, x, y, z)
+                ends[e, 3] = f
+                ends[e, 4] = 1.0 if miss else 0.0
+            _sample_line(coef, order, fill, ends, i0, i1, j, k, out, missed, wx, wy, wz)
