@@ -383,8 +383,9 @@ def _blend_ir(context, builder, corners, fractions):
     return context.make_tuple(builder, types.UniTuple(types.float64, 4), lanes)
 
 
-def _int_args(context, builder, signature, args, kind):
-    return [context.cast(builder, v, t, kind) for v, t in zip(args, signature, strict=True)]
+def _cast_args(context, builder, types_in, args, kind):
+    """IR values ``args`` (of numba types ``types_in``) cast to the numba type ``kind``."""
+    return [context.cast(builder, v, t, kind) for v, t in zip(args, types_in, strict=True)]
 
 
 @intrinsic
@@ -398,8 +399,8 @@ def _blend_nodes4(typingctx, v, o, di, dj, dk, ti, tj, tk):
         from llvmlite import ir
 
         base = context.make_array(signature.args[0])(context, builder, args[0]).data
-        o, di, dj, dk = _int_args(context, builder, signature.args[1:5], args[1:5], types.int64)
-        fractions = _int_args(context, builder, signature.args[5:], args[5:], types.float64)
+        o, di, dj, dk = _cast_args(context, builder, signature.args[1:5], args[1:5], types.int64)
+        fractions = _cast_args(context, builder, signature.args[5:], args[5:], types.float64)
         vf = ir.VectorType(ir.FloatType(), 4)
         corners = []
         for dz in (False, True):
@@ -427,9 +428,9 @@ def _blend_planes4(typingctx, v, jv, o, di, dj, dk, vol, jo, jdi, jdj, jdk, ti, 
 
         base = context.make_array(signature.args[0])(context, builder, args[0]).data
         jbase = context.make_array(signature.args[1])(context, builder, args[1]).data
-        o, di, dj, dk, vol, jo, jdi, jdj, jdk = _int_args(context, builder, signature.args[2:11],
+        o, di, dj, dk, vol, jo, jdi, jdj, jdk = _cast_args(context, builder, signature.args[2:11],
                                                           args[2:11], types.int64)
-        fractions = _int_args(context, builder, signature.args[11:], args[11:], types.float64)
+        fractions = _cast_args(context, builder, signature.args[11:], args[11:], types.float64)
         vf = ir.VectorType(ir.FloatType(), 4)
         i32 = ir.IntType(32)
         corners = []
