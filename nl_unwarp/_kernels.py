@@ -383,6 +383,19 @@ def _blend_ir(context, builder, corners, fractions):
     return context.make_tuple(builder, types.UniTuple(types.float64, 4), lanes)
 
 
+def _corner_offsets(builder, o, di, dj, dk):
+    """IR of the eight corner offsets of a cell, in :func:`_blend_ir`'s order (x fastest)."""
+    offsets = []
+    for dz in (False, True):
+        for dy in (False, True):
+            for dx in (False, True):
+                off = o
+                for on, step in ((dz, dk), (dy, dj), (dx, di)):
+                    off = builder.add(off, step) if on else off
+                offsets.append(off)
+    return offsets
+
+
 def _cast_args(context, builder, types_in, args, kind):
     """IR values ``args`` (of numba types ``types_in``) cast to the numba type ``kind``."""
     return [context.cast(builder, v, t, kind) for v, t in zip(args, types_in, strict=True)]
@@ -402,15 +415,8 @@ def _blend_nodes4(typingctx, v, o, di, dj, dk, ti, tj, tk):
         o, di, dj, dk = _cast_args(context, builder, signature.args[1:5], args[1:5], types.int64)
         fractions = _cast_args(context, builder, signature.args[5:], args[5:], types.float64)
         vf = ir.VectorType(ir.FloatType(), 4)
-        corners = []
-        for dz in (False, True):
-            for dy in (False, True):
-                for dx in (False, True):
-                    off = o
-                    for on, step in ((dz, dk), (dy, dj), (dx, di)):
-                        off = builder.add(off, step) if on else off
-                    ptr = builder.bitcast(builder.gep(base, [off]), vf.as_pointer())
-                    corners.append(builder.load(ptr, align=4))
+        corners = [builder.load(builder.bitcast(builder.gep(base, [off]), vf.as_pointer()), align=4)
+                   for off in _corner_offsets(builder, o, di, dj, dk)]
         return _blend_ir(context, builder, corners, fractions)
 
     return sig, codegen
@@ -434,20 +440,16 @@ def _blend_planes4(typingctx, v, jv, o, di, dj, dk, vol, jo, jdi, jdj, jdk, ti, 
         vf = ir.VectorType(ir.FloatType(), 4)
         i32 = ir.IntType(32)
         corners = []
-        for dz in (False, True):
-            for dy in (False, True):
-                for dx in (False, True):
-                    off, joff = o, jo
-                    for on, step, jstep in ((dz, dk, jdk), (dy, dj, jdj), (dx, di, jdi)):
-                        if on:
-                            off, joff = builder.add(off, step), builder.add(joff, jstep)
-                    vec = ir.Constant(vf, ir.Undefined)
-                    for c in range(3):
-                        item = builder.load(builder.gep(base, [off]))
-                        vec = builder.insert_element(vec, item, ir.Constant(i32, c))
-                        off = builder.add(off, vol)
-                    item = builder.load(builder.gep(jbase, [joff]))
-                    corners.append(builder.insert_element(vec, item, ir.Constant(i32, 3)))
+        g_offsets = _corner_offsets(builder, o, di, dj, dk)
+        j_offsets = _corner_offsets(builder, jo, jdi, jdj, jdk)
+        for off, joff in zip(g_offsets, j_offsets, strict=True):
+            vec = ir.Constant(vf, ir.Undefined)
+            for c in range(3):
+                item = builder.load(builder.gep(base, [off]))
+                vec = builder.insert_element(vec, item, ir.Constant(i32, c))
+                off = builder.add(off, vol)
+            item = builder.load(builder.gep(jbase, [joff]))
+            corners.append(builder.insert_element(vec, item, ir.Constant(i32, 3)))
         return _blend_ir(context, builder, corners, fractions)
 
     return sig, codegen
