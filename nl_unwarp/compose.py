@@ -96,22 +96,14 @@ def _grid_affine(affine, what: str) -> np.ndarray:
     return affine
 
 
-def _voxels_x_fastest(arr: np.ndarray) -> bool:
-    """Whether the voxel axes (the first three) have increasing strides: x fastest, as NIfTI
-    stores voxels, whatever the channels' stride (Fortran order, or a voxel's channels side by
-    side as :func:`nl_unwarp.warp.compute_warp` makes them). Axes of length 1 do not count."""
-    strides = [st for st, n in zip(arr.strides[:3], arr.shape[:3], strict=True) if n > 1]
-    return all(st > 0 for st in strides) and strides == sorted(strides)
-
-
 def _x_fastest(values, dims: int, what: str) -> np.ndarray:
-    """float32 with voxels in NIfTI's memory order (x fastest): no copy for a float32 array whose
-    voxels already are (Fortran-ordered, or a voxel-interleaved warp); others are copied to
-    Fortran order."""
+    """float32 with voxels in NIfTI's memory order (x fastest): no copy for a float32 array that
+    the chain kernels read in place (:func:`flat_buffer`: Fortran-ordered, or a voxel-interleaved
+    warp); others are copied to Fortran order once, here."""
     arr = np.asarray(values)
     if arr.ndim != dims:
         raise ValueError(what)
-    if arr.dtype == np.float32 and _voxels_x_fastest(arr):
+    if _steps(arr) is not None:
         return arr
     return np.asfortranarray(arr, dtype=np.float32)
 
@@ -144,7 +136,9 @@ def _steps(values: np.ndarray) -> tuple[int, int] | None:
     if values.dtype != np.float32 or not all(st % 4 == 0 and st > 0 for st in values.strides):
         return None
     node = values.strides[0] // 4
-    regular = ((nx > 1 or ny * nz == 1) and (ny == 1 or values.strides[1] == 4 * node * nx)
+    # The y and z strides fix the addresses read; a length-1 x axis may carry any stride, and then
+    # passes only if it is the one that makes them agree.
+    regular = ((ny == 1 or values.strides[1] == 4 * node * nx)
                and (nz == 1 or values.strides[2] == 4 * node * nx * ny))
     return (node, values.strides[3] // 4 if values.ndim == 4 else 0) if regular else None
 
