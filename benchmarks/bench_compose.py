@@ -152,6 +152,7 @@ def main() -> None:
     from nl_unwarp.demo import demo_coil_path
     from nl_unwarp.frames import DeviceFrame
     from nl_unwarp.io.coilfile import load_coil
+    from nl_unwarp.io.itk import read_itk_field
     from nl_unwarp.resample import correct_image, resample_volume
     from nl_unwarp.warp import compute_warp
 
@@ -203,8 +204,6 @@ def main() -> None:
     grown0 = compute_warp(coil, grown_shape, grown_aff, frame)
     sitk_raw, sitk_target, composite = _sitk_peer(Path(scratch.name), raw, raw_aff, target_aff, shape,
                                                   warp_w, matrix, grown0)
-    from nl_unwarp.io.itk import read_itk_field
-
     g_file = FieldStep(*read_itk_field(Path(scratch.name) / "g.nii"))
     no_factor = resample_chain(raw, raw_aff, registration + [FieldStep(grown0.disp_ras_mm, grown0.affine)],
                                shape, target_aff, on_outside="ignore").data
@@ -222,16 +221,16 @@ def main() -> None:
                                                              on_outside="ignore"))
         record("once generic", lambda c=chain: resample_chain(raw, raw_aff, c, shape, target_aff,
                                                               on_outside="ignore", unroll=False))
-        files_chain = registration + [FactorStep(np.asfortranarray(warp.jacobian), raw_aff), g_file]
+        # The raw-grid Jacobian map as a file gives it back: one volume, Fortran order.
+        j_raw = FactorStep(np.asfortranarray(warp.jacobian), raw_aff)
+        files_chain = registration + [j_raw, g_file]
         record("once files", lambda c=files_chain: resample_chain(raw, raw_aff, c, shape, target_aff,
                                                                   on_outside="ignore"))
         coarse = record("coarse warp", lambda: compute_warp(coil, coarse_shape, coarse_aff, frame))
         coarse_chain = chain_of(coarse)
         once_coarse = record("once coarse", lambda c=coarse_chain: resample_chain(
             raw, raw_aff, c, shape, target_aff, on_outside="ignore"))
-        # The Jacobian map as the BIDS app's files give it: one volume, Fortran order.
-        raw_j_chain = registration + [FactorStep(np.asfortranarray(warp.jacobian), raw_aff),
-                                      FieldStep(coarse.disp_ras_mm, coarse.affine)]
+        raw_j_chain = registration + [j_raw, FieldStep(coarse.disp_ras_mm, coarse.affine)]
         record("once coarse J raw", lambda c=raw_j_chain: resample_chain(raw, raw_aff, c, shape, target_aff,
                                                                           on_outside="ignore"))
         # Voxels whose end point crosses the raw image's edge between the two fields jump to the
@@ -247,7 +246,7 @@ def main() -> None:
         del peer
         uncovered = once.uncovered_fraction
         del warp, grown, inner, chain, once, composed, two, coarse, coarse_chain, once_coarse, raw_j_chain
-        del files_chain
+        del files_chain, j_raw
 
     med_w = {s: statistics.median(v) for s, v in wall.items()}
     med_c = {s: statistics.median(v) for s, v in cpu.items()}
